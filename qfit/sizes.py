@@ -1,0 +1,34 @@
+"""Byte sizes: parse at the edges ("256KiB", "1M", "1048576"), bytes everywhere inside.
+
+1 KiB = 1 k = 1024 B and 1 MiB = 1 M = 1024 KiB, as MCU datasheets count memory.
+"""
+import re
+
+from qfit.errors import QfitError
+
+_UNITS = {"": 1, "b": 1, "k": 1024, "kb": 1024, "kib": 1024,
+          "m": 1024 ** 2, "mb": 1024 ** 2, "mib": 1024 ** 2,
+          "g": 1024 ** 3, "gb": 1024 ** 3, "gib": 1024 ** 3}
+_SIZE = re.compile(r"^\s*([0-9]+(?:\.[0-9]+)?)\s*([a-zA-Z]*)\s*$")
+
+
+def parse_size(text: str, what: str = "size") -> int:
+    """Return the number of bytes in `text`; raise QfitError naming `what` if it does not parse."""
+    match = _SIZE.match(str(text))
+    unit = match.group(2).lower() if match else None
+    if not match or unit not in _UNITS:
+        raise QfitError(f"{what}: cannot read '{text}' as a size (use bytes, or a number with KiB/MiB/k/M)")
+    value = float(match.group(1)) * _UNITS[unit]
+    if value != int(value):
+        raise QfitError(f"{what}: '{text}' is not a whole number of bytes")
+    return int(value)
+
+
+def format_size(n_bytes: float) -> str:
+    """Human-readable bytes: '812 B', '231.5 KiB', '1.23 MiB'."""
+    n = float(n_bytes)
+    if abs(n) < 1024:
+        return f"{int(n)} B"
+    if abs(n) < 1024 ** 2:
+        return f"{n / 1024:.1f} KiB"
+    return f"{n / 1024 ** 2:.2f} MiB"
