@@ -1,0 +1,213 @@
+"""quantize: loaded float graph + plan + calibrated ranges -> a standard ONNX QDQ model.
+
+Formulas (Jacob et al., "Quantization and Training of Neural Networks for Efficient Integer-
+Arithmetic-Only Inference", CVPR 2018; the ONNX QuantizeLinear/DequantizeLinear spec):
+  q = saturate(round_half_even(x / s) + z),  x' = (q - z) * s
+  weights   per output channel c: s_c = max|W_c| / 127, z = 0, q in [-127, 127]
+  bias      int32, s_b = s_in * s_w(c), z = 0
+  8-bit activations, asymmetric: s = (hi - lo) / 255, z = round(-128 - lo / s) in [-128, 127]
+  8-bit activations, symmetric:  s = max(|lo|, |hi|) / 127, z = 0
+  16-bit activations (symmetric, common practice): s = max(|lo|, |hi|) / 32767, z = 0
+Degenerate ranges (an all-zero tensor or channel) get s = 1, so nothing divides by zero and zeros
+stay exactly zero.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+
+from qfit.load import LoadedModel
+from qfit.observe import TensorStats, range_for
+from qfit.plan import Plan
+
+INT_RANGE = {8: (-128, 127), 16: (-32768, 32767)}
+WEIGHT_QMAX = {8: 127, 16: 32767}
+INT_TYPE = {8: (np.int8, TensorProto.INT8), 16: (np.int16, TensorProto.INT16)}
+INT32_MIN, INT32_MAX = -(2 ** 31), 2 ** 31 - 1
+
+
+@dataclass
+class ActivationParams:
+    scale: float
+    zero_point: int
+    bits: int
+    lo: float
+    hi: float
+
+
+@dataclass
+class QuantizedModel:
+    """The QDQ model and the parameters written into it (the report reads these)."""
+
+    model: onnx.ModelProto
+    activations: dict[str, ActivationParams] = field(default_factory=dict)
+    weight_scales: dict[tuple[str, int], np.ndarray] = field(default_factory=dict)
+    weight_error: dict[tuple[str, int], float] = field(default_factory=dict)  # max |W - W'| / scale
+    dequantized: dict[str, str] = field(default_factory=dict)  # tensor -> name of its int8 value, dequantized
+
+
+def activation_params(lo: float, hi: float, bits: int = 8, symmetric: bool = False) -> tuple[float, int]:
+    """(scale, zero point) for the range [lo, hi], which is widened to contain 0."""
+    lo, hi = min(float(lo), 0.0), max(float(hi), 0.0)
+    qmin, qmax = INT_RANGE[bits]
+    if symmetric or bits > 8:
+        bound = max(-lo, hi)
+        scale = bound / qmax if bound > 0 else 1.0
+        return float(np.float32(scale)), 0
+    scale = (hi - lo) / (qmax - qmin)
+    if not scale > 0 or not np.isfinite(scale):
+        return 1.0, 0
+    scale = float(np.float32(scale))
+    zero_point = int(np.clip(np.round(qmin - lo / scale), qmin, qmax))
+    return scale, zero_point
+
+
+def quantize_weight(w: np.ndarray, axis: int | None, bits: int = 8) -> tuple[np.ndarray, np.ndarray]:
+    """Symmetric weight quantization: (q, scale), per channel along `axis` or per tensor."""
+    qmax = WEIGHT_QMAX[bits]
+    w = np.asarray(w, dtype=np.float32)
+    if axis is None:
+        amax = np.array(np.abs(w).max() if w.size else 0.0, dtype=np.float32)
+        scale = np.where(amax > 0, amax / qmax, 1.0).astype(np.float32)
+        q = np.clip(np.round(w / scale), -qmax, qmax)
+        return q.astype(INT_TYPE[bits][0]), scale.reshape(())
+    moved = np.moveaxis(w, axis, 0).reshape(w.shape[axis], -1)
+    amax = np.abs(moved).max(axis=1) if moved.size else np.zeros(w.shape[axis], np.float32)
+    scale = np.where(amax > 0, amax / qmax, 1.0).astype(np.float32)
+    shape = [1] * w.ndim
+    shape[axis] = -1
+    q = np.clip(np.round(w / scale.reshape(shape)), -qmax, qmax)
+    return q.astype(INT_TYPE[bits][0]), scale
+
+
+def quantize_bias(b: np.ndarray, input_scale: float, weight_scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """int32 bias with scale input_scale * weight_scale (per channel), zero point 0."""
+    scale = (np.float32(input_scale) * np.asarray(weight_scale, np.float32)).astype(np.float32)
+    scale = np.broadcast_to(scale, np.shape(b)).astype(np.float32)
+    safe = np.where(scale > 0, scale, 1.0)
+    q = np.clip(np.round(np.asarray(b, np.float64) / safe), INT32_MIN, INT32_MAX).astype(np.int32)
+    return q, safe.astype(np.float32)
+
+
+def calibrated_ranges(plan: Plan, stats: dict[str, TensorStats], method: str,
+                      percentile: float) -> dict[str, tuple[float, float]]:
+    """Range of every tensor with its own quantizer, by its own method or the run's method."""
+    ranges = {}
+    for name in plan.calibrated_tensors():
+        q = plan.activations[name]
+        ranges[name] = range_for(stats[name], q.method or method, q.bits, q.symmetric, percentile)
+    return ranges
+
+
+def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, float]]) -> QuantizedModel:
+    """Write the QDQ model for `plan` with activation ranges `ranges` (see the module docstring)."""
+    result = QuantizedModel(model=onnx.ModelProto())
+    params = result.activations
+    for name in plan.activations:
+        source = plan.source_of(name)
+        q = plan.activations[name]
+        lo, hi = ranges[source]
+        scale, zero_point = activation_params(lo, hi, q.bits, q.symmetric)
+        params[name] = ActivationParams(scale, zero_point, q.bits, lo, hi)
+
+    graph = loaded.graph
+    initializers: list[onnx.TensorProto] = []
+    new_nodes: list[onnx.NodeProto] = []
+    used_names = {o for n in graph.node for o in n.output} | {i.name for i in graph.initializer}
+    used_names |= set(loaded.input_names)
+
+    def fresh(base: str) -> str:
+        name, i = base, 1
+        while name in used_names:
+            name, i = f"{base}_{i}", i + 1
+        used_names.add(name)
+        return name
+
+    def add_init(array: np.ndarray, base: str) -> str:
+        name = fresh(base)
+        initializers.append(numpy_helper.from_array(array, name))
+        return name
+
+    def qdq_pair(tensor: str, read_name: str, out_name: str) -> None:
+        p = params[tensor]
+        dtype = INT_TYPE[p.bits][0]
+        s = add_init(np.array(p.scale, np.float32), f"{tensor}_scale")
+        z = add_init(np.array(p.zero_point, dtype), f"{tensor}_zero_point")
+        quantized = fresh(f"{tensor}_quantized")
+        new_nodes.append(helper.make_node("QuantizeLinear", [read_name, s, z], [quantized],
+                                          name=fresh(f"{tensor}_QuantizeLinear")))
+        new_nodes.append(helper.make_node("DequantizeLinear", [quantized, s, z], [out_name],
+                                          name=fresh(f"{tensor}_DequantizeLinear")))
+
+    outputs = set(loaded.output_names)
+    # Tensors read through their dequantized copy; a graph output keeps its name on the DQ side.
+    read_as: dict[str, str] = {}
+    renamed_output: dict[str, str] = {}
+    for name in plan.activations:
+        if name in outputs:
+            renamed_output[name] = fresh(f"{name}_float")
+            read_as[name] = name
+        else:
+            read_as[name] = fresh(f"{name}_dequantized")
+
+    result.dequantized = dict(read_as)
+    for name in loaded.input_names:
+        if name in plan.activations:
+            qdq_pair(name, name, read_as[name])
+
+    for node in graph.node:
+        new = onnx.NodeProto()
+        new.CopyFrom(node)
+        for i, inp in enumerate(node.input):
+            key = (node.name, i)
+            if key in plan.weights:
+                wq = plan.weights[key]
+                qw, scale = quantize_weight(loaded.constants[inp], wq.axis, wq.bits)
+                result.weight_scales[key] = scale
+                deq = qw.astype(np.float32) * (scale if wq.axis is None else
+                                               scale.reshape([-1 if d == wq.axis else 1 for d in range(qw.ndim)]))
+                result.weight_error[key] = float(np.max(np.abs(deq - loaded.constants[inp]) /
+                                                        np.maximum(np.max(scale), 1e-30))) if qw.size else 0.0
+                qname = add_init(qw, f"{inp}_{node.name}_quantized")
+                sname = add_init(scale, f"{inp}_{node.name}_scale")
+                zname = add_init(np.zeros(scale.shape, INT_TYPE[wq.bits][0]), f"{inp}_{node.name}_zero_point")
+                dname = fresh(f"{inp}_{node.name}_dequantized")
+                attrs = {"axis": wq.axis} if wq.axis is not None else {}
+                new_nodes.append(helper.make_node("DequantizeLinear", [qname, sname, zname], [dname],
+                                                  name=fresh(f"{dname}_DequantizeLinear"), **attrs))
+                new.input[i] = dname
+            elif key in plan.biases and (node.name, 1) in result.weight_scales:
+                source = node.input[0]
+                qb, sb = quantize_bias(loaded.constants[inp], params[source].scale,
+                                       result.weight_scales[(node.name, 1)])
+                qname = add_init(qb, f"{inp}_{node.name}_quantized")
+                sname = add_init(sb, f"{inp}_{node.name}_scale")
+                zname = add_init(np.zeros(sb.shape, np.int32), f"{inp}_{node.name}_zero_point")
+                dname = fresh(f"{inp}_{node.name}_dequantized")
+                new_nodes.append(helper.make_node("DequantizeLinear", [qname, sname, zname], [dname],
+                                                  name=fresh(f"{dname}_DequantizeLinear"), axis=0))
+                new.input[i] = dname
+            elif inp in read_as:
+                new.input[i] = read_as[inp]
+        for i, out in enumerate(node.output):
+            if out in renamed_output:
+                new.output[i] = renamed_output[out]
+        new_nodes.append(new)
+        for out in node.output:
+            if out in plan.activations:
+                produced = renamed_output.get(out, out)
+                qdq_pair(out, produced, read_as[out])
+
+    referenced = {i for n in new_nodes for i in n.input}
+    kept_inits = [init for init in graph.initializer if init.name in referenced]
+    new_graph = helper.make_graph(new_nodes, graph.name or "qfit", list(graph.input), list(graph.output),
+                                  kept_inits + initializers)
+    model = helper.make_model(new_graph, opset_imports=list(loaded.model.opset_import),
+                              producer_name="qfit", ir_version=loaded.model.ir_version)
+    for prop in loaded.model.metadata_props:
+        model.metadata_props.append(prop)
+    result.model = model
+    return result

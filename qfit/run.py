@@ -1,0 +1,111 @@
+"""run: onnxruntime sessions for the float model and for the QDQ model, batched.
+
+Two arithmetic paths exist for a QDQ model in onnxruntime:
+  * "fused": default optimizations fuse DQ -> Conv -> Q into an int8 kernel. On x86 without VNNI
+    that kernel saturates 16-bit intermediate sums, so its outputs can differ by several steps from
+    an MCU kernel that accumulates in 32 bits.
+  * "faithful": QDQ fusion disabled (session config `session.disable_quant_qdq` = 1). Every
+    DequantizeLinear produces exact int8 values times their scales and the layer runs in float32, which
+    matches 32-bit integer accumulation up to float rounding (checked against an exact integer
+    computation in tests/test_quantize.py). qfit's accuracy figures come from this path.
+"""
+from __future__ import annotations
+
+import onnx
+import onnxruntime as ort
+import numpy as np
+from onnx import TensorProto, helper
+
+FAITHFUL_PATH = ("onnxruntime CPU with QDQ fusion disabled (session.disable_quant_qdq=1): int8 values "
+                 "dequantized exactly, products summed in float32, matching 32-bit integer accumulation")
+
+_threads = {"intra": 0}
+
+
+def set_threads(n: int) -> None:
+    """Threads per onnxruntime session (0 = onnxruntime's default)."""
+    _threads["intra"] = max(0, int(n))
+
+
+def _options(faithful: bool) -> ort.SessionOptions:
+    so = ort.SessionOptions()
+    so.log_severity_level = 3
+    if _threads["intra"]:
+        so.intra_op_num_threads = _threads["intra"]
+        so.inter_op_num_threads = 1
+    if faithful:
+        so.add_session_config_entry("session.disable_quant_qdq", "1")
+    return so
+
+
+def with_outputs(model: onnx.ModelProto, names: list[str], elem_types: dict[str, int] | None = None) -> onnx.ModelProto:
+    """A copy of `model` that also returns the intermediate tensors `names`."""
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    present = {o.name for o in copy.graph.output}
+    for name in names:
+        if name not in present:
+            elem = (elem_types or {}).get(name, TensorProto.FLOAT)
+            copy.graph.output.append(helper.make_tensor_value_info(name, elem, None))
+            present.add(name)
+    return copy
+
+
+def batch_free(model: onnx.ModelProto) -> onnx.ModelProto:
+    """A copy whose inputs and outputs have a free leading dimension, for batched runs."""
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    del copy.graph.value_info[:]
+    for vi in list(copy.graph.input) + list(copy.graph.output):
+        dims = vi.type.tensor_type.shape.dim
+        if len(dims):
+            dims[0].ClearField("dim_value")
+            dims[0].dim_param = "batch"
+    return copy
+
+
+class Runner:
+    """A reusable session over `model` returning `outputs` (names) for a dict of input arrays.
+
+    Batches larger than 1 run through a batch-free copy of the model when that copy produces the
+    right shapes (a model that hard-codes its batch in a Reshape does not); otherwise sample by sample.
+    """
+
+    def __init__(self, model: onnx.ModelProto, outputs: list[str], faithful: bool = False,
+                 batch_size: int = 16):
+        self.outputs = list(outputs)
+        self.faithful = faithful
+        extended = with_outputs(model, self.outputs)
+        self.session = ort.InferenceSession(extended.SerializeToString(), _options(faithful),
+                                            providers=["CPUExecutionProvider"])
+        self.batched = None
+        if batch_size > 1:
+            try:
+                candidate = ort.InferenceSession(batch_free(extended).SerializeToString(), _options(faithful),
+                                                 providers=["CPUExecutionProvider"])
+                if self._batch_works(candidate):
+                    self.batched = candidate
+            except Exception:
+                self.batched = None
+
+    def _batch_works(self, session: ort.InferenceSession) -> bool:
+        feeds = {}
+        for inp in self.session.get_inputs():
+            shape = [d if isinstance(d, int) else 1 for d in inp.shape]
+            feeds[inp.name] = np.zeros([2] + shape[1:], np.float32)
+        try:
+            got = session.run(self.outputs, feeds)
+            single = self.session.run(self.outputs, {k: v[:1] for k, v in feeds.items()})
+        except Exception:
+            return False
+        return all(g.shape[:1] == (2,) and g.shape[1:] == s.shape[1:] and s.shape[:1] == (1,)
+                   for g, s in zip(got, single))
+
+    def __call__(self, inputs: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        n = next(iter(inputs.values())).shape[0]
+        if n == 1 or self.batched is not None:
+            session = self.session if n == 1 else self.batched
+            values = session.run(self.outputs, inputs)
+            return dict(zip(self.outputs, values))
+        parts = [self.session.run(self.outputs, {k: v[i:i + 1] for k, v in inputs.items()}) for i in range(n)]
+        return {name: np.concatenate([p[j] for p in parts], axis=0) for j, name in enumerate(self.outputs)}
