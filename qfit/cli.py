@@ -1,0 +1,161 @@
+"""cli: argparse over the library. `qfit check` runs the whole job; `qfit budget` the memory part."""
+from __future__ import annotations
+
+import argparse
+import os
+import signal
+import sys
+
+from qfit import __version__
+from qfit.errors import QfitError
+from qfit.sizes import parse_size
+
+EXIT_OK, EXIT_FAIL, EXIT_BAD_INPUT = 0, 1, 2
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, but a usage error is one line on stderr and exit 2."""
+
+    def error(self, message):
+        raise QfitError(f"{self.prog}: {message}")
+
+
+def _add_common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("model", help="float ONNX model")
+    p.add_argument("--flash", required=True, help="flash available for the model, e.g. 1MiB")
+    p.add_argument("--sram", required=True, help="SRAM available for activations, e.g. 256KiB")
+    p.add_argument("--flash-reserve", default="0", help="flash kept for code and runtime (estimate)")
+    p.add_argument("--input-shape", action="append", metavar="NAME=1x3x96x96",
+                   help="fix the dimensions of an input (repeatable)")
+
+
+def _check_parser(sub) -> None:
+    p = sub.add_parser("check", help="quantize to int8, measure the accuracy cost, check flash and SRAM")
+    _add_common(p)
+    p.add_argument("--calib", required=True, help="folder of representative inputs (images or .npy/.npz)")
+    p.add_argument("--eval", help="folder of evaluation inputs (class subfolders give labels)")
+    p.add_argument("--labels", help="CSV of file,label for the evaluation folder")
+    p.add_argument("--out", required=True, help="output folder for the int8 model and the reports")
+    p.add_argument("--method", default="percentile", help="calibration: minmax, percentile, mse, entropy")
+    p.add_argument("--percentile", type=float, default=99.99, help="for --method percentile")
+    p.add_argument("--per-tensor", action="store_true", help="per-tensor weight scales (for comparison)")
+    p.add_argument("--symmetric", action="store_true", help="symmetric activations (zero point 0)")
+    p.add_argument("--max-drop", type=float, metavar="PT", help="accuracy gate: largest allowed drop, in points")
+    p.add_argument("--threshold", type=float, help="decision threshold for score/reconstruction outputs")
+    p.add_argument("--preprocess", help="JSON file: size, resize, color, layout, scale, mean, std")
+    p.add_argument("--size", help="image target size HxW, e.g. 96x96")
+    p.add_argument("--color", choices=["RGB", "BGR", "L"], help="image colour mode")
+    p.add_argument("--layout", choices=["NCHW", "NHWC"], help="input layout")
+    p.add_argument("--scale", type=float, help="pixel scale (x = pixel*scale, then (x-mean)/std)")
+    p.add_argument("--mean", help="comma-separated per-channel mean")
+    p.add_argument("--std", help="comma-separated per-channel std")
+    p.add_argument("--limit", type=int, help="use at most N calibration files (seeded sample)")
+    p.add_argument("--eval-limit", type=int, help="use at most N evaluation files (seeded sample)")
+    p.add_argument("--seed", type=int, default=0, help="seed for --limit sampling")
+    p.add_argument("--batch", type=int, default=16, help="samples per onnxruntime run")
+    p.add_argument("--threads", type=int, default=0, help="onnxruntime threads (0 = its default)")
+    p.add_argument("--skip-bad", action="store_true", help="skip unreadable data files (counted in the report)")
+    p.add_argument("--quiet", action="store_true", help="no progress bars")
+
+
+def _preprocess_from(args):
+    from qfit.data import Preprocess, load_preprocess
+
+    pre = load_preprocess(args.preprocess) if args.preprocess else None
+    overrides = {}
+    if args.size:
+        try:
+            h, w = (int(v) for v in args.size.lower().split("x"))
+        except ValueError:
+            raise QfitError(f"--size: cannot read '{args.size}' (expected HxW, e.g. 96x96)") from None
+        overrides["size"] = (h, w)
+    for key in ("color", "layout", "scale"):
+        if getattr(args, key) is not None:
+            overrides[key] = getattr(args, key)
+    for key in ("mean", "std"):
+        text = getattr(args, key)
+        if text is not None:
+            try:
+                overrides[key] = tuple(float(v) for v in text.split(","))
+            except ValueError:
+                raise QfitError(f"--{key}: cannot read '{text}' as comma-separated numbers") from None
+    if not overrides:
+        return pre
+    base = pre or Preprocess()
+    for key, value in overrides.items():
+        setattr(base, key, value)
+    return base
+
+
+def _run_check(args) -> int:
+    from qfit import files, pipeline, report as report_module, budget
+    from qfit.load import parse_input_shapes
+    from qfit.run import set_threads
+
+    flash = parse_size(args.flash, "--flash")
+    sram = parse_size(args.sram, "--sram")
+    reserve = parse_size(args.flash_reserve, "--flash-reserve")
+    if not os.path.exists(args.calib):
+        raise QfitError(f"--calib: {args.calib}: no such folder")
+    if os.path.exists(args.out) and not os.path.isdir(args.out):
+        raise QfitError(f"--out: {args.out} exists and is not a folder")
+    set_threads(args.threads)
+    options = pipeline.CheckOptions(
+        model_path=args.model, calib_dir=args.calib, out_dir=args.out, flash_limit_bytes=flash,
+        sram_limit_bytes=sram, eval_dir=args.eval, labels_csv=args.labels, flash_reserve_bytes=reserve,
+        method=args.method, percentile=args.percentile, input_shapes=parse_input_shapes(args.input_shape),
+        preprocess=_preprocess_from(args), limit=args.limit, eval_limit=args.eval_limit, seed=args.seed,
+        batch_size=max(1, args.batch), per_channel=not args.per_tensor, symmetric_activations=args.symmetric,
+        max_drop_pt=args.max_drop, threshold=args.threshold, skip_bad=args.skip_bad,
+        progress=not args.quiet and sys.stderr.isatty())
+    files.ensure_writable_dir(args.out)
+    result = pipeline.check(options)
+    sections = {"text": [budget.render_text(result.budget)], "markdown": [budget.render_markdown(result.budget)]}
+    files.write_bytes(result.model_file, result.quantized.model.SerializeToString())
+    files.write_text(os.path.join(args.out, "report.md"), report_module.markdown(result.report, sections["markdown"]))
+    files.write_json(os.path.join(args.out, "report.json"), result.report)
+    print(report_module.summary_text(result.report, sections["text"]))
+    print(f"\nWrote {result.model_file}, {os.path.join(args.out, 'report.json')}, "
+          f"{os.path.join(args.out, 'report.md')}")
+    return result.exit_code
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="qfit", description="int8 post-training quantization with a microcontroller fit verdict")
+    parser.add_argument("--version", action="version", version=f"qfit {__version__}")
+    sub = parser.add_subparsers(dest="command", parser_class=_Parser)
+    _check_parser(sub)
+    try:
+        from qfit import budget_cli
+        budget_cli.add_parser(sub)
+    except ImportError:
+        pass
+    return parser
+
+
+def _on_signal(signum, frame):
+    raise KeyboardInterrupt
+
+
+def main(argv: list[str] | None = None) -> int:
+    signal.signal(signal.SIGTERM, _on_signal)
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if args.command == "check":
+            return _run_check(args)
+        if args.command == "budget":
+            from qfit import budget_cli
+            return budget_cli.run(args)
+        parser.print_help()
+        return EXIT_BAD_INPUT
+    except QfitError as e:
+        print(f"qfit: error: {e}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("qfit: interrupted; no partial output was left", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,219 @@
+"""compare: float vs quantized tensors -> per-layer error and end metrics, streaming over samples.
+
+Per tensor (sums kept over all samples, so memory does not grow with their number):
+  SQNR (dB)            10 log10( sum x^2 / sum (x - x')^2 )
+  cosine similarity    sum x x' / sqrt(sum x^2 * sum x'^2)
+  max abs error        max |x - x'|
+  relative mean error  mean |x - x'| / (max x - min x)     (error relative to the float range)
+End metrics: top-1 (top-5 when there are more than 5 classes) for float and int8 with the drop in
+percentage points and a 95 % interval from an exact binomial (Clopper-Pearson) interval on the
+discordant pairs, as in McNemar's test (McNemar 1947); without labels, argmax agreement and output
+SQNR; for score or reconstruction outputs, output SQNR and, given a threshold, decision flips.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass
+class ErrorSums:
+    """Streaming sums for the error metrics of one tensor."""
+
+    signal: float = 0.0
+    noise: float = 0.0
+    quantized: float = 0.0
+    dot: float = 0.0
+    abs_error: float = 0.0
+    max_abs_error: float = 0.0
+    count: int = 0
+    lo: float = np.inf
+    hi: float = -np.inf
+
+    def update(self, reference: np.ndarray, quantized: np.ndarray) -> None:
+        x = np.asarray(reference, np.float64).ravel()
+        y = np.asarray(quantized, np.float64).ravel()
+        e = x - y
+        self.signal += float(x @ x)
+        self.noise += float(e @ e)
+        self.quantized += float(y @ y)
+        self.dot += float(x @ y)
+        abs_e = np.abs(e)
+        self.abs_error += float(abs_e.sum())
+        if abs_e.size:
+            self.max_abs_error = max(self.max_abs_error, float(abs_e.max()))
+            self.lo, self.hi = min(self.lo, float(x.min())), max(self.hi, float(x.max()))
+        self.count += x.size
+
+    def sqnr_db(self) -> float:
+        return sqnr_from_sums(self.signal, self.noise)
+
+    def cosine(self) -> float:
+        denom = math.sqrt(self.signal * self.quantized)
+        return float(self.dot / denom) if denom > 0 else 1.0
+
+    def relative_mean_error(self) -> float:
+        span = self.hi - self.lo
+        return float(self.abs_error / self.count / span) if self.count and span > 0 else 0.0
+
+    def to_dict(self) -> dict:
+        return {"sqnr_db": round_db(self.sqnr_db()), "cosine": round(self.cosine(), 6),
+                "max_abs_error": float(self.max_abs_error),
+                "mean_abs_error_rel": round(self.relative_mean_error(), 6)}
+
+
+SQNR_CAP_DB = 200.0  # an exact match has infinite SQNR; JSON has no infinity
+
+
+def sqnr_from_sums(signal: float, noise: float) -> float:
+    if noise <= 0:
+        return SQNR_CAP_DB
+    if signal <= 0:
+        return -SQNR_CAP_DB
+    return min(SQNR_CAP_DB, 10.0 * math.log10(signal / noise))
+
+
+def sqnr_db(reference: np.ndarray, quantized: np.ndarray) -> float:
+    sums = ErrorSums()
+    sums.update(reference, quantized)
+    return sums.sqnr_db()
+
+
+def round_db(value: float) -> float:
+    return round(float(value), 2)
+
+
+# ---- exact binomial interval ------------------------------------------------------------------
+
+def _binom_cdf(k: int, n: int, p: float) -> float:
+    """P(X <= k) for X ~ Binomial(n, p), summed exactly in log space."""
+    if k < 0:
+        return 0.0
+    if k >= n:
+        return 1.0
+    if p <= 0:
+        return 1.0
+    if p >= 1:
+        return 0.0
+    logs = [math.lgamma(n + 1) - math.lgamma(i + 1) - math.lgamma(n - i + 1)
+            + i * math.log(p) + (n - i) * math.log1p(-p) for i in range(k + 1)]
+    top = max(logs)
+    return min(1.0, math.exp(top) * sum(math.exp(v - top) for v in logs))
+
+
+def clopper_pearson(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Exact (Clopper-Pearson 1934) interval for a binomial proportion, by bisection on the CDF."""
+    if trials == 0:
+        return 0.0, 1.0
+    alpha = 1.0 - confidence
+
+    def solve(target, k):  # p with P(X <= k; p) = target; the CDF falls as p grows
+        lo, hi = 0.0, 1.0
+        for _ in range(80):
+            mid = (lo + hi) / 2
+            if _binom_cdf(k, trials, mid) > target:
+                lo = mid
+            else:
+                hi = mid
+        return (lo + hi) / 2
+
+    lower = 0.0 if successes == 0 else solve(1 - alpha / 2, successes - 1)
+    upper = 1.0 if successes == trials else solve(alpha / 2, successes)
+    return lower, upper
+
+
+def paired_drop(float_correct: np.ndarray, int8_correct: np.ndarray, confidence: float = 0.95) -> dict:
+    """Accuracy drop (pt) between paired predictions, with an exact interval on the discordant pairs.
+
+    Given m discordant pairs of which b are "float right, int8 wrong", b ~ Binomial(m, p) and the
+    drop is (b - c) / n = m (2p - 1) / n; the Clopper-Pearson interval for p maps onto the drop.
+    """
+    f = np.asarray(float_correct, bool)
+    q = np.asarray(int8_correct, bool)
+    n = int(f.size)
+    b = int(np.sum(f & ~q))
+    c = int(np.sum(~f & q))
+    m = b + c
+    drop = 100.0 * (b - c) / n if n else 0.0
+    if m == 0:
+        lower_p, upper_p = 0.5, 0.5
+    else:
+        lower_p, upper_p = clopper_pearson(b, m, confidence)
+    return {"drop_pt": drop, "drop_ci95_pt": [100.0 * m * (2 * lower_p - 1) / n if n else 0.0,
+                                               100.0 * m * (2 * upper_p - 1) / n if n else 0.0],
+            "discordant": {"float_only_correct": b, "int8_only_correct": c}, "samples": n}
+
+
+class EndMetrics:
+    """Accumulates end-metric inputs over batches: predictions, correctness, output error."""
+
+    def __init__(self, kind: str, threshold: float | None = None):
+        self.kind = kind  # "classification" | "score"
+        self.threshold = threshold
+        self.output = ErrorSums()
+        self.float_top1: list[np.ndarray] = []
+        self.int8_top1: list[np.ndarray] = []
+        self.float_top5: list[np.ndarray] = []
+        self.int8_top5: list[np.ndarray] = []
+        self.labels: list[np.ndarray] = []
+        self.float_decisions: list[np.ndarray] = []
+        self.int8_decisions: list[np.ndarray] = []
+        self.classes = 0
+        self.samples = 0
+
+    def update(self, float_out: np.ndarray, int8_out: np.ndarray, labels: np.ndarray | None,
+               score_inputs: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+        self.output.update(float_out, int8_out)
+        n = float_out.shape[0]
+        self.samples += n
+        if self.kind == "classification":
+            f = float_out.reshape(n, -1)
+            q = int8_out.reshape(n, -1)
+            self.classes = f.shape[1]
+            self.float_top1.append(np.argmax(f, axis=1))
+            self.int8_top1.append(np.argmax(q, axis=1))
+            if labels is not None:
+                self.labels.append(np.asarray(labels))
+                if self.classes > 5:
+                    self.float_top5.append(_in_top5(f, labels))
+                    self.int8_top5.append(_in_top5(q, labels))
+        elif self.threshold is not None:
+            fs, qs = score_inputs if score_inputs is not None else (float_out.reshape(n, -1).mean(1),
+                                                                    int8_out.reshape(n, -1).mean(1))
+            self.float_decisions.append(fs > self.threshold)
+            self.int8_decisions.append(qs > self.threshold)
+
+    def result(self) -> dict:
+        out = {"output_sqnr_db": round_db(self.output.sqnr_db())}
+        if self.kind == "classification":
+            f = np.concatenate(self.float_top1) if self.float_top1 else np.zeros(0, int)
+            q = np.concatenate(self.int8_top1) if self.int8_top1 else np.zeros(0, int)
+            out["agreement_pct"] = float(100.0 * np.mean(f == q)) if f.size else 0.0
+            if self.labels:
+                y = np.concatenate(self.labels)
+                fc, qc = f == y, q == y
+                drop = paired_drop(fc, qc)
+                out.update({"metric": "top1", "float": float(100 * fc.mean()), "int8": float(100 * qc.mean()),
+                            **drop})
+                if self.float_top5:
+                    f5, q5 = np.concatenate(self.float_top5), np.concatenate(self.int8_top5)
+                    out["top5"] = {"float": float(100 * f5.mean()), "int8": float(100 * q5.mean()),
+                                   **paired_drop(f5, q5)}
+                out["predictions"] = {"float": f.tolist(), "int8": q.tolist(), "labels": y.tolist()}
+            else:
+                out.update({"metric": "agreement", "float": 100.0, "int8": out["agreement_pct"],
+                            "drop_pt": 100.0 - out["agreement_pct"], "samples": int(f.size)})
+        else:
+            out.update({"metric": "output_sqnr", "samples": self.samples})
+            if self.float_decisions:
+                fd, qd = np.concatenate(self.float_decisions), np.concatenate(self.int8_decisions)
+                out["decision_flips_pct"] = float(100.0 * np.mean(fd != qd))
+                out["threshold"] = self.threshold
+        return out
+
+
+def _in_top5(scores: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    top = np.argsort(-scores, axis=1, kind="stable")[:, :5]
+    return np.any(top == np.asarray(labels)[:, None], axis=1)
