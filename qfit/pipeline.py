@@ -13,7 +13,7 @@ import numpy as np
 import onnx
 from tqdm import tqdm
 
-from qfit import __version__, budget as budget_module
+from qfit import __version__
 from qfit.compare import EndMetrics, ErrorSums
 from qfit.data import DataFolder, Preprocess
 from qfit.errors import QfitError
@@ -187,6 +187,7 @@ def check(options: CheckOptions) -> CheckResult:
     accuracy, sums = evaluate(loaded, quantized, layers, eval_data, options.batch_size, options.threshold,
                               options.progress)
 
+    from qfit import budget as budget_module
     budget_options = budget_module.BudgetOptions(flash_limit_bytes=options.flash_limit_bytes,
                                                  sram_limit_bytes=options.sram_limit_bytes,
                                                  flash_reserve_bytes=options.flash_reserve_bytes,
