@@ -212,4 +212,5 @@ def is_relu6_clip(node: NodeProto, constant_value: Callable[[str], "np.ndarray |
     lo = constant_value(node.input[1]) if len(node.input) > 1 and node.input[1] else None
     if lo is None:
         lo = attr(node, "min", None)
-    return lo is not None and float(np.asarray(lo)) >= 0.0
+    # a 1-element array is as good as a scalar (the opset converter may turn one into the other)
+    return lo is not None and np.asarray(lo).size == 1 and float(np.asarray(lo).reshape(-1)[0]) >= 0.0
