@@ -1,10 +1,465 @@
-"""whatif: what would make a model fit (filled in below)."""
+"""whatif: what would make a model fit — a smaller input, tiled first layers, another order, or flash
+changes per layer.
+
+  resolution  the largest input size (same aspect ratio, a multiple of 8 or 16) whose arena fits,
+              found by re-running ONNX shape inference on a copy of the graph at each size;
+  tiling      patch-based execution of the leading high-resolution layers (Lin et al., NeurIPS 2021,
+              "MCUNetV2: Memory-Efficient Patch-based Inference for Tiny Deep Learning"): for n x n
+              tiles and each place the leading layers could stop, the peak SRAM and the extra MACs
+              that the overlapping halos cost, from receptive fields traced back through the
+              kernels, strides, paddings and dilations of the tiled layers;
+  order       the bytes the best execution order saves over the default one;
+  flash       the layers whose weights dominate, and what changing each one's precision saves/costs.
+
+The halo formula and the memory model of a tiled stage are in docs/memory.md.
+"""
 from __future__ import annotations
+
+import onnx
+from onnx import TensorProto, helper, shape_inference
+
+from qfit import ops, schedule
+from qfit.sizes import format_size
+
+RESOLUTION_STEPS = (8, 16)
+MAX_RESOLUTION_TRIES = 48
+TILE_COUNTS = (2, 3, 4)
+MAX_SPLIT_CANDIDATES = 16
+WHAT_IF_ORDER_TIME_LIMIT_S = 0.25   # order search per re-sized graph: a what-if, not the verdict
+
+_ELEMENTWISE = {"Relu", "Clip", "LeakyRelu", "PRelu", "Sigmoid", "HardSigmoid", "HardSwish", "Tanh",
+                "Add", "Sub", "Mul", "Div"}
+_WINDOWED = {"Conv", "MaxPool", "AveragePool"}
 
 
 def what_if(loaded, plan, options, result) -> dict:
-    return {}
+    """All what-if sections for one analysed model (`result` is its BudgetResult)."""
+    out = {"sram_limit_bytes": options.sram_limit_bytes, "flash_limit_bytes": options.flash_limit_bytes}
+    limit = options.sram_limit_bytes
+    out["order"] = {"default_peak_bytes": result.order["default_peak_bytes"],
+                    "best_peak_bytes": result.order["best_peak_bytes"],
+                    "saves_bytes": result.order["default_peak_bytes"] - result.order["best_peak_bytes"]}
+    out["resolution"] = resolution_what_if(loaded, plan, options) if limit is not None else None
+    out["tiling"] = tiling_what_if(loaded, plan, options, result)
+    out["flash"] = flash_what_if(result.flash)
+    return out
 
 
-def sections(what_if: dict) -> list:
-    return []
+# ---- (a) input resolution -----------------------------------------------------------------------
+
+def _image_input(loaded):
+    inputs = [n for n in loaded.input_names if n not in loaded.constants]
+    if len(inputs) != 1:
+        return None, "needs exactly one input"
+    shape = loaded.shapes.get(inputs[0])
+    if shape is None or len(shape) != 4:
+        return None, "the input is not an image (rank 4)"
+    # ONNX convolutions are NCHW; an NHWC input has few channels last.
+    axes = (1, 2) if shape[3] <= 4 < shape[1] else (2, 3)
+    return (inputs[0], shape, axes), ""
+
+
+def _light_model(loaded) -> onnx.ModelProto:
+    """A copy of the graph for shape inference only: big float initializers become typed graph
+    inputs (shape inference needs their shapes, not their values), small ones stay (Resize scales
+    and Reshape shapes are read by shape inference)."""
+    model = onnx.ModelProto()
+    model.ir_version = loaded.model.ir_version
+    model.opset_import.extend(loaded.model.opset_import)
+    graph = model.graph
+    graph.name = loaded.graph.name
+    graph.node.extend(loaded.graph.node)
+    graph.input.extend(loaded.graph.input)
+    graph.output.extend(loaded.graph.output)
+    for init in loaded.graph.initializer:
+        numel = 1
+        for d in init.dims:
+            numel *= d
+        if init.data_type in (TensorProto.FLOAT, TensorProto.FLOAT16) and numel >= 64:
+            graph.input.append(helper.make_tensor_value_info(init.name, init.data_type, list(init.dims)))
+        else:
+            graph.initializer.append(init)
+    for out in graph.output:
+        out.type.tensor_type.ClearField("shape")
+    return model
+
+
+def shapes_at(light: onnx.ModelProto, loaded, input_name: str, new_shape) -> dict | None:
+    """Static shapes of every tensor when `input_name` has `new_shape`, or None if inference fails."""
+    model = onnx.ModelProto()
+    model.CopyFrom(light)
+    for inp in model.graph.input:
+        if inp.name == input_name:
+            tt = inp.type.tensor_type
+            tt.ClearField("shape")
+            tt.shape.dim.extend([onnx.TensorShapeProto.Dimension(dim_value=int(v)) for v in new_shape])
+    try:
+        inferred = shape_inference.infer_shapes(model, strict_mode=True, data_prop=True)
+    except Exception:
+        return None
+    shapes = {name: shape for name, shape in loaded.shapes.items() if name in loaded.constants}
+    for vi in list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output):
+        tt = vi.type.tensor_type
+        if tt.HasField("shape") and all(d.HasField("dim_value") and d.dim_value > 0 for d in tt.shape.dim):
+            shapes[vi.name] = tuple(int(d.dim_value) for d in tt.shape.dim)
+    needed = [o for node in loaded.graph.node for o in node.output if o]
+    if any(o not in shapes for o in needed):
+        return None
+    return shapes
+
+
+def resolution_what_if(loaded, plan, options) -> dict:
+    from qfit import budget
+
+    found, why = _image_input(loaded)
+    if found is None:
+        return {"skipped": why}
+    name, shape, (h_axis, w_axis) = found
+    h0, w0 = shape[h_axis], shape[w_axis]
+    light = _light_model(loaded)
+    limit = options.sram_limit_bytes
+    quick = budget.BudgetOptions(**{**options.__dict__, "what_if": False,
+                                    "order_time_limit_s": min(options.order_time_limit_s, WHAT_IF_ORDER_TIME_LIMIT_S)})
+    tried: dict[tuple[int, int], dict] = {}
+
+    def evaluate(h: int, step: int) -> dict:
+        w = max(step, int(round(h * w0 / h0 / step)) * step)
+        if (h, w) in tried:
+            return tried[(h, w)]
+        new_shape = list(shape)
+        new_shape[h_axis], new_shape[w_axis] = h, w
+        shapes = shapes_at(light, loaded, name, new_shape)
+        if shapes is None:
+            row = {"height": h, "width": w, "arena_bytes": None, "peak_bytes": None,
+                   "fits": None, "note": "shape inference fails at this size"}
+        else:
+            memory = budget.build_memory_model(loaded, plan, quick, shapes)
+            best, live, arena = budget.sram_for(memory, quick)
+            macs = budget._macs(loaded, quick, shapes)["total"]
+            row = {"height": h, "width": w, "arena_bytes": arena["bytes"], "peak_bytes": best.peak_bytes,
+                   "macs": macs, "fits": arena["bytes"] <= limit}
+        tried[(h, w)] = row
+        return row
+
+    current = evaluate(h0, 1)
+    answers = {}
+    step_small = min(RESOLUTION_STEPS)
+    if current["fits"]:
+        heights = list(range((2 * h0) // step_small * step_small, h0, -step_small))   # larger sizes that may fit
+    else:
+        heights = list(range((h0 - 1) // step_small * step_small, 0, -step_small))
+    budget_left = MAX_RESOLUTION_TRIES
+    for step in sorted(RESOLUTION_STEPS):
+        for h in heights:
+            if h % step:
+                continue
+            if budget_left <= 0:
+                break
+            if (h, max(step, int(round(h * w0 / h0 / step)) * step)) not in tried:
+                budget_left -= 1
+            row = evaluate(h, step)
+            if row["fits"]:
+                answers[step] = row
+                break
+            if row["fits"] is None:
+                continue
+        if step not in answers and current["fits"]:
+            answers[step] = None   # nothing larger fits: the current size is the answer
+    return {
+        "input": name,
+        "current": {"height": h0, "width": w0, "arena_bytes": current["arena_bytes"], "fits": current["fits"]},
+        "criterion": "arena bytes <= SRAM limit, same aspect ratio, both sides multiples of the step",
+        "searched": "larger sizes" if current["fits"] else "smaller sizes",
+        "largest_fitting": {f"step_{s}": answers.get(s) for s in sorted(RESOLUTION_STEPS)},
+        "tried": [tried[k] for k in sorted(tried, reverse=True)],
+    }
+
+
+# ---- (b) tiled leading layers -------------------------------------------------------------------
+
+def _window(node, in_shape, out_shape):
+    """[(kernel, stride, dilation, pad_begin)] for the two spatial dims of a Conv/MaxPool/AveragePool."""
+    if node.op_type == "Conv":
+        kernel = ops.attr(node, "kernel_shape", None)
+        if kernel is None:
+            return None
+        kernel = list(kernel)
+    else:
+        kernel = list(ops.attr(node, "kernel_shape", [1, 1]))
+    if len(kernel) != 2:
+        return None
+    strides = list(ops.attr(node, "strides", [1, 1]))
+    dilations = list(ops.attr(node, "dilations", [1, 1]))
+    pads = list(ops.attr(node, "pads", [0, 0, 0, 0]))
+    auto_pad = ops.attr(node, "auto_pad", b"NOTSET")
+    auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
+    result = []
+    for d in range(2):
+        k, s, dil = kernel[d], strides[d], dilations[d]
+        if auto_pad in ("SAME_UPPER", "SAME_LOWER"):
+            total = max((out_shape[2 + d] - 1) * s + (k - 1) * dil + 1 - in_shape[2 + d], 0)
+            begin = total // 2 if auto_pad == "SAME_UPPER" else total - total // 2
+        elif auto_pad == "VALID":
+            begin = 0
+        else:
+            begin = pads[d]
+        result.append((k, s, dil, begin))
+    return result
+
+
+def _input_interval(lo: int, hi: int, k: int, s: int, dil: int, pad: int, size: int) -> tuple[int, int]:
+    """Input rows [lo', hi'] an output interval [lo, hi] reads: lo*s - pad .. hi*s - pad + (k-1)*dil,
+    clipped to the tensor (padding rows are not stored)."""
+    return max(0, lo * s - pad), min(size - 1, hi * s - pad + (k - 1) * dil)
+
+
+def _tileable(node, shapes, constants) -> bool:
+    out = shapes.get(node.output[0]) if node.output else None
+    if out is None or len(out) != 4:
+        return False
+    acts = [n for n in node.input if n and n not in constants]
+    if node.op_type in _WINDOWED:
+        return len(acts) == 1 and _window(node, shapes[acts[0]], out) is not None
+    if node.op_type in _ELEMENTWISE:
+        for name in node.input:
+            if not name:
+                continue
+            shape = shapes.get(name)
+            if name in constants:
+                if shape and len(shape) >= 2 and any(d != 1 for d in shape[-2:]):
+                    return False   # a spatially varying constant would need slicing too
+            elif shape != out:
+                return False
+        return True
+    if node.op_type == "Concat":
+        return ops.attr(node, "axis", 0) in (1, -3) and all(
+            shapes.get(n) is not None and tuple(shapes[n][2:]) == tuple(out[2:]) for n in acts)
+    return False
+
+
+def _split_candidates(loaded, plan, memory) -> list[tuple[int, str]]:
+    """(position p, tensor): after node p of the default order exactly one tensor is still needed,
+    and every node up to p can be tiled."""
+    nodes = memory.nodes
+    shapes, constants = loaded.shapes, loaded.constants
+    outputs = set(loaded.output_names)
+    last_reader: dict[str, int] = {}
+    for i, node in enumerate(nodes):
+        for name in node.input:
+            if name and name not in constants:
+                last_reader[name] = i
+    produced_at = {n: -1 for n in loaded.input_names if n not in constants}
+    candidates = []
+    input_area = max((shapes[n][2] * shapes[n][3] for n in produced_at if len(shapes.get(n, ())) == 4), default=0)
+    for p, node in enumerate(nodes):
+        if not _tileable(node, shapes, constants):
+            break
+        for out in node.output:
+            produced_at[out] = p
+        crossing = [t for t, at in produced_at.items() if at <= p and (last_reader.get(t, -1) > p or t in outputs)]
+        if len(crossing) != 1 or crossing[0] in outputs or produced_at[crossing[0]] < 0:
+            continue
+        if crossing[0] in plan.fused:
+            continue   # not stored: the split is after the ReLU it is folded into
+        t = crossing[0]
+        shape = shapes[t]
+        if input_area and shape[2] * shape[3] * 64 < input_area:
+            break   # past the high-resolution layers: tiles would be mostly halo
+        candidates.append((p, t))
+        if len(candidates) >= MAX_SPLIT_CANDIDATES:
+            break
+    return candidates
+
+
+def _tile_bounds(size: int, n: int) -> list[tuple[int, int]]:
+    return [(size * i // n, size * (i + 1) // n - 1) for i in range(n)]
+
+
+def _regions(nodes, p: int, split: str, tile, shapes, constants) -> dict[str, tuple]:
+    """Rows and columns of every tensor of the stage that one tile needs, traced back from the
+    split tensor's tile through the stage's nodes in reverse."""
+    regions = {split: tile}
+    for node in reversed(nodes[:p + 1]):
+        outs = [regions[o] for o in node.output if o in regions]
+        if not outs:
+            continue
+        (r0, r1), (c0, c1) = outs[0]
+        acts = [n for n in node.input if n and n not in constants]
+        if node.op_type in _WINDOWED:
+            (kh, sh, dh, ph), (kw, sw, dw, pw) = _window(node, shapes[acts[0]], shapes[node.output[0]])
+            h, w = shapes[acts[0]][2], shapes[acts[0]][3]
+            needed = [(_input_interval(r0, r1, kh, sh, dh, ph, h), _input_interval(c0, c1, kw, sw, dw, pw, w))]
+        else:
+            needed = [((r0, r1), (c0, c1))]
+        for name in acts:
+            (a0, a1), (b0, b1) = needed[0]
+            if name in regions:
+                (x0, x1), (y0, y1) = regions[name]
+                regions[name] = ((min(a0, x0), max(a1, x1)), (min(b0, y0), max(b1, y1)))
+            else:
+                regions[name] = ((a0, a1), (b0, b1))
+    return regions
+
+
+def _area(region) -> int:
+    (r0, r1), (c0, c1) = region
+    return max(0, r1 - r0 + 1) * max(0, c1 - c0 + 1)
+
+
+def tiling_what_if(loaded, plan, options, result) -> dict:
+    memory = result.memory
+    if memory is None:
+        return {"skipped": "no memory model"}
+    nodes = memory.nodes
+    shapes, constants = loaded.shapes, loaded.constants
+    candidates = _split_candidates(loaded, plan, memory)
+    if not candidates:
+        return {"skipped": "the first layers cannot be tiled (no spatial Conv/pool stage with a single "
+                           "tensor leaving it)", "options": []}
+    problem = memory.problem
+    default_live = schedule.liveness(problem, problem.default_order)
+    total_macs = result.macs["total"]
+    node_macs = [sum(ops.cost(node, shapes.get)) for node in nodes]
+    limit = options.sram_limit_bytes
+    rows = []
+    for p, split in candidates:
+        split_shape = shapes[split]
+        rest_peak = max(default_live.step_bytes[p + 1:], default=0)
+        stage_nodes = set(range(p + 1))
+        for n in TILE_COUNTS:
+            if split_shape[2] < n or split_shape[3] < n:
+                continue
+            tile_macs = 0
+            stage_peak = 0
+            for rows_range in _tile_bounds(split_shape[2], n):
+                for cols_range in _tile_bounds(split_shape[3], n):
+                    regions = _regions(nodes, p, split, (rows_range, cols_range), shapes, constants)
+                    for i in stage_nodes:
+                        out = nodes[i].output[0]
+                        full = shapes[out][2] * shapes[out][3]
+                        if out in regions and full:
+                            tile_macs += node_macs[i] // full * _area(regions[out])
+                    stage_peak = max(stage_peak, _stage_peak(memory, p, split, regions, shapes))
+            stage_macs = sum(node_macs[i] for i in stage_nodes)
+            extra = tile_macs - stage_macs
+            peak = max(stage_peak, rest_peak)
+            rows.append({
+                "tiles": f"{n}x{n}", "n": n, "split_after": nodes[p].name, "split_tensor": split,
+                "split_shape": list(split_shape), "layers_tiled": p + 1,
+                "peak_bytes": peak, "stage_peak_bytes": stage_peak, "rest_peak_bytes": rest_peak,
+                "fits": None if limit is None else peak <= limit,
+                "extra_macs": extra, "extra_macs_pct": round(100.0 * extra / total_macs, 2) if total_macs else 0.0,
+            })
+    fitting = sorted((r for r in rows if r["fits"]), key=lambda r: (r["extra_macs"], r["peak_bytes"]))
+    return {"method": "patch-based inference of the leading layers (Lin et al., NeurIPS 2021)",
+            "best": fitting[0] if fitting else None,
+            "options": rows}
+
+
+def _stage_peak(memory, p: int, split: str, regions: dict, shapes: dict) -> int:
+    """Peak of the tiled stage (nodes 0..p in the default order) for one tile: the graph input and
+    the split tensor stay whole in SRAM, every other buffer is cut to the tile's region."""
+    problem = memory.problem
+    split_buffer = memory.buffer_of[split]
+    buffers, index = [], {}
+    for b, buf in enumerate(problem.buffers):
+        if buf.producer is not None and buf.producer > p:
+            continue
+        readers = frozenset(r for r in buf.readers if r <= p)
+        if buf.producer is None or b == split_buffer:
+            size = buf.size_bytes
+        else:
+            size = 0
+            for m in buf.members:
+                shape = shapes.get(m)
+                if m in regions and shape and len(shape) == 4 and shape[2] * shape[3]:
+                    size = max(size, buf.size_bytes * _area(regions[m]) // (shape[2] * shape[3]))
+                elif m not in regions:
+                    size = max(size, buf.size_bytes if readers else 0)
+        index[b] = len(buffers)
+        buffers.append(schedule.Buffer(buf.name, size, buf.producer, readers, is_output=(b == split_buffer),
+                                       members=buf.members, dtype=buf.dtype))
+    sub = schedule.MemoryProblem(problem.node_names[:p + 1], problem.preds[:p + 1], buffers,
+                                 problem.extra_bytes[:p + 1])
+    return schedule.liveness(sub).peak_bytes
+
+
+# ---- (c) flash ----------------------------------------------------------------------------------
+
+def flash_what_if(flash: dict, top: int = 8) -> dict:
+    rows = []
+    weights_total = flash["int8_bytes"] or 1
+    for layer in sorted(flash["layers"], key=lambda r: (-r["total_bytes"], r["name"]))[:top]:
+        row = {"name": layer["name"], "op_type": layer["op_type"], "precision": layer["precision"],
+               "total_bytes": layer["total_bytes"], "share_pct": round(100.0 * layer["total_bytes"] / weights_total, 1)}
+        if layer["precision"] == "float":
+            # its float constants at 1 B instead of 4 B (per-channel scales, a few bytes, not counted)
+            row["if_int8_saves_bytes"] = layer["float_bytes"] - layer["float_bytes"] // 4
+        elif layer["precision"].startswith("int16"):
+            row["if_int8_saves_bytes"] = layer["weight_bytes"] // 2
+        else:
+            row["if_float_costs_bytes"] = max(0, layer["float32_bytes"] - layer["total_bytes"])
+        rows.append(row)
+    over = None
+    if flash["limit_bytes"] is not None:
+        over = max(0, flash["total_bytes"] - flash["limit_bytes"])
+    return {"over_limit_bytes": over, "largest_layers": rows}
+
+
+# ---- rendering (used by budget.render_text / render_markdown) -----------------------------------
+
+def sections(what_if: dict) -> list[tuple[str, list[str], list[list], list[str]]]:
+    out = []
+    lines = []
+    order = what_if.get("order") or {}
+    if order.get("saves_bytes"):
+        lines.append(f"run the nodes in the best order found: saves {format_size(order['saves_bytes'])} of peak")
+    res = what_if.get("resolution")
+    if res and "skipped" not in res:
+        cur = res["current"]
+        for key, row in res["largest_fitting"].items():
+            step = key.split("_")[1]
+            if row:
+                verb = "fits" if res["searched"] == "smaller sizes" else "still fits"
+                lines.append(f"input {row['height']}x{row['width']} (multiple of {step}) {verb}: "
+                             f"arena {format_size(row['arena_bytes'])}, peak {format_size(row['peak_bytes'])}")
+            elif res["searched"] == "smaller sizes":
+                lines.append(f"no input size that is a multiple of {step} below {cur['height']}x{cur['width']} fits")
+    elif res:
+        lines.append(f"resolution: {res['skipped']}")
+    tiling = what_if.get("tiling") or {}
+    if tiling.get("best"):
+        b = tiling["best"]
+        lines.append(f"tile the first {b['layers_tiled']} layers {b['tiles']} (up to {b['split_after']}): peak "
+                     f"{format_size(b['peak_bytes'])}, +{b['extra_macs']:,} MACs ({b['extra_macs_pct']}% more)")
+    elif tiling.get("options"):
+        b = min(tiling["options"], key=lambda r: (r["peak_bytes"], r["extra_macs"]))
+        lines.append(f"no tiling option fits; lowest: {b['tiles']} up to {b['split_after']}, peak "
+                     f"{format_size(b['peak_bytes'])} (the untiled rest peaks at {format_size(b['rest_peak_bytes'])})")
+    elif tiling.get("skipped"):
+        lines.append(f"tiling: {tiling['skipped']}")
+    out.append(("What would make SRAM fit", [], [], lines))
+    opts = tiling.get("options") or []
+    if opts:
+        shown = sorted(opts, key=lambda r: (not r["fits"], r["peak_bytes"] if not r["fits"] else r["extra_macs"],
+                                            r["layers_tiled"], r["n"]))[:8]
+        rows = [[r["tiles"], r["split_after"], "x".join(str(d) for d in r["split_shape"][1:]),
+                 format_size(r["peak_bytes"]), f"+{r['extra_macs']:,}", f"{r['extra_macs_pct']}%",
+                 "yes" if r["fits"] else ("no" if r["fits"] is False else "-")] for r in shown]
+        out.append(("Tiled first layers (patch-based)", ["tiles", "split after", "split CxHxW", "peak",
+                                                         "extra MACs", "of total", "fits"], rows,
+                    [f"{len(opts)} options evaluated, best {len(shown)} shown"]))
+    flash = what_if.get("flash") or {}
+    if flash.get("largest_layers"):
+        rows = []
+        for r in flash["largest_layers"]:
+            if "if_int8_saves_bytes" in r:
+                change = f"as int8 saves {format_size(r['if_int8_saves_bytes'])}"
+            else:
+                change = f"kept float costs {format_size(r['if_float_costs_bytes'])}"
+            rows.append([r["name"], r["op_type"], r["precision"], format_size(r["total_bytes"]), f"{r['share_pct']}%", change])
+        lines = []
+        if flash.get("over_limit_bytes"):
+            lines.append(f"flash is {format_size(flash['over_limit_bytes'])} over the limit")
+        out.append(("Flash: largest layers", ["layer", "op", "precision", "bytes", "share", "change"], rows, lines))
+    return out
