@@ -175,13 +175,14 @@ def _flash(loaded: LoadedModel, plan: Plan, options: BudgetOptions) -> dict:
             row["float32_bytes"] += as_float32
             weight = plan.weights.get((node.name, i))
             if weight is not None and not is_float:
-                per_elt = weight.bits // 8
+                stored = -(-n * weight.bits // 8)          # sub-byte weights are packed
+                zero_point_bytes = -(-weight.bits // 8)
                 channels = int(arr.shape[weight.axis]) if weight.axis is not None and arr.ndim else 1
-                row["weight_bytes"] += n * per_elt
-                row["scale_bytes"] += channels * (SCALE_BYTES + per_elt)   # scale + zero point
+                row["weight_bytes"] += stored
+                row["scale_bytes"] += channels * (SCALE_BYTES + zero_point_bytes)
                 weight_bits.add(weight.bits)
                 weight_float32_bytes += as_float32
-                weight_stored_bytes += n * per_elt
+                weight_stored_bytes += stored
             elif (node.name, i) in plan.biases and not is_float:
                 row["bias_bytes"] += n * BIAS_BYTES
             elif arr.dtype.kind == "f":
@@ -197,8 +198,8 @@ def _flash(loaded: LoadedModel, plan: Plan, options: BudgetOptions) -> dict:
             continue
         if is_float:
             row["precision"] = "float"
-        elif 16 in weight_bits:
-            row["precision"] = "int16 weights"
+        elif weight_bits - {8}:
+            row["precision"] = "int" + "/".join(str(b) for b in sorted(weight_bits)) + " weights"
         else:
             row["precision"] = describe_node_precision(plan, node)
         rows.append(row)
