@@ -40,9 +40,11 @@ _PILLOW_FILTER = {
 _WIDE_PIXEL_MODES = ("I", "F")
 
 _NPY_MAGIC = b"\x93NUMPY"
-_ZIP_MAGIC = b"PK\x03\x04"
 _PICKLE_PROTOCOL_BYTE = 0x80  # first byte of a pickle stream, protocol 2 and newer
 _NUMERIC_KINDS = "biuf"  # bool, signed, unsigned, float; complex would lose its imaginary part
+# Decoders of foreign formats (Pillow plugins, numpy's header parser built on ast.literal_eval, zlib)
+# raise many exception types on damaged bytes; at those boundaries any Exception means "unreadable".
+_DECODE_ERRORS = (Exception,)
 
 
 # ------------------------------------------------------------------------------------ preprocess
@@ -67,7 +69,8 @@ def _is_number(value) -> bool:
 def _check_preprocess_value(key: str, value, where: str):
     """Return `value` normalised for field `key`, or raise naming the key."""
     def bad(expected: str):
-        raise QfitError(f"{where}: key '{key}': {expected}, got {json.dumps(value) if _jsonable(value) else repr(value)}")
+        shown = json.dumps(value) if _jsonable(value) else repr(value)
+        raise QfitError(f"{where}: key '{key}': {expected}, got {shown}")
 
     if key == "size":
         if value is None:
@@ -163,8 +166,18 @@ def _is_data_file(path: str) -> bool:
 def _discover(folder: str) -> tuple[list[str], list[str], list[str]]:
     """(data files, other files, top-level subfolders), relative with '/', sorted; hidden entries skipped."""
     data_files, other_files, top_dirs = [], [], []
-    for root, dirs, names in os.walk(folder):
-        dirs[:] = [d for d in dirs if not d.startswith(".")]  # prunes hidden folders from the walk
+    visited = set()
+    # Links are followed (class folders are often linked into a split); a folder seen before is not
+    # walked again, which also stops link cycles.
+    for root, dirs, names in os.walk(folder, followlinks=True):
+        real = os.path.realpath(root)
+        if real in visited:
+            dirs[:] = []
+            continue
+        visited.add(real)
+        # Sorted so that a folder reachable twice is always listed under the same path; hidden
+        # folders are pruned from the walk.
+        dirs[:] = sorted(d for d in dirs if not d.startswith("."))
         rel_root = os.path.relpath(root, folder)
         if rel_root == ".":
             top_dirs = list(dirs)
@@ -193,6 +206,10 @@ class DataFolder:
         self.label_source: str | None = None
         if not self.input_shapes:
             raise QfitError(f"{role} data: the model has no inputs to feed")
+        for name, shape in self.input_shapes.items():
+            if not shape or any(d <= 0 for d in shape):
+                raise QfitError(f"{role} data: model input '{name}' has shape {_shape_text(shape)}; every "
+                                f"dimension must be a fixed positive size (set it with --input-shape)")
 
         if not os.path.exists(folder):
             raise QfitError(f"{role} data: {folder}: no such folder")
@@ -200,7 +217,8 @@ class DataFolder:
             raise QfitError(f"{role} data: {folder}: not a folder")
         data_files, other_files, top_dirs = _discover(folder)
         if not data_files:
-            found = f" (found {len(other_files)} other files, e.g. {other_files[0]})" if other_files else ""
+            count = len(other_files)
+            found = f" (found {count} other file{'s' if count != 1 else ''}, e.g. {other_files[0]})" if count else ""
             raise QfitError(f"{role} data: no image or .npy/.npz files in {folder}{found}")
 
         files, labels = data_files, None
@@ -225,7 +243,7 @@ class DataFolder:
             self._image_plan = self._plan_images()
 
         if limit is not None:
-            if limit <= 0:
+            if not isinstance(limit, (int, np.integer)) or isinstance(limit, bool) or limit <= 0:
                 raise QfitError(f"{role} data: limit must be a positive number of samples, got {limit}")
             if limit < len(files):
                 chosen = np.sort(np.random.default_rng(seed).choice(len(files), size=limit, replace=False))
@@ -371,7 +389,7 @@ class DataFolder:
             with Image.open(path) as img:
                 mode, (width, height) = img.mode, img.size
                 img.verify()  # checks the file's structure (e.g. PNG chunk CRCs) without decoding pixels
-        except (OSError, ValueError, SyntaxError, Image.DecompressionBombError) as e:
+        except _DECODE_ERRORS as e:
             raise _SkippableError(f"cannot read image ({_first_line(e)})") from None
         self._check_image_mode_and_size(rel, mode, (height, width))
 
@@ -404,13 +422,14 @@ class DataFolder:
                 pixels = np.asarray(img, dtype=np.float32)
         except QfitError:
             raise
-        except (OSError, ValueError, SyntaxError, Image.DecompressionBombError) as e:
+        except _DECODE_ERRORS as e:
             raise _SkippableError(f"cannot read image ({_first_line(e)})") from None
         if pixels.ndim == 2:
             pixels = pixels[:, :, None]
         if p.color == "BGR":
             pixels = pixels[:, :, ::-1]
-        values = (pixels * np.float32(p.scale) - plan["mean"]) / plan["std"]
+        with np.errstate(over="ignore", invalid="ignore"):  # overflow to Inf is reported just below
+            values = (pixels * np.float32(p.scale) - plan["mean"]) / plan["std"]
         if p.layout == "NCHW":
             values = values.transpose(2, 0, 1)
         values = np.ascontiguousarray(values[None], dtype=np.float32)
@@ -468,21 +487,20 @@ class DataFolder:
                     shape, dtype = _read_npy_header(f)
             except _PickledError:
                 raise QfitError(f"{self._where(rel)}: contains pickled objects; refused") from None
-            except (OSError, ValueError, EOFError) as e:
+            except _DECODE_ERRORS as e:
                 raise _SkippableError(f"cannot read .npy ({_first_line(e)})") from None
             name = next(iter(self._array_targets(rel, None)))
             self._check_array_shape_dtype(rel, "array", name, shape, dtype)
             return
         try:
             with zipfile.ZipFile(path) as archive:
-                members = [m for m in archive.namelist() if m.endswith(".npy")]
                 headers = {}
-                for member in members:
+                for key, member in _npz_members(archive).items():
                     with archive.open(member) as f:
-                        headers[member[:-4]] = _read_npy_header(f)
+                        headers[key] = _read_npy_header(f)
         except _PickledError:
             raise QfitError(f"{self._where(rel)}: contains pickled objects; refused") from None
-        except (OSError, ValueError, EOFError, zipfile.BadZipFile, RuntimeError) as e:
+        except _DECODE_ERRORS as e:
             raise _SkippableError(f"cannot read .npz ({_first_line(e)})") from None
         if not headers:
             raise _SkippableError("cannot read .npz (it holds no arrays)")
@@ -497,23 +515,26 @@ class DataFolder:
                 targets = self._array_targets(rel, None)
                 loaded = {None: np.load(path, allow_pickle=False)}
             else:
-                with np.load(path, allow_pickle=False) as archive:
-                    targets = self._array_targets(rel, sorted(archive.files))
-                    loaded = {key: archive[key] for key in targets.values()}
+                with zipfile.ZipFile(path) as archive:
+                    members = _npz_members(archive)
+                    targets = self._array_targets(rel, sorted(members))
+                    loaded = {}
+                    for key in targets.values():
+                        with archive.open(members[key]) as f:
+                            loaded[key] = np.lib.format.read_array(f, allow_pickle=False)
         except QfitError:
             raise
-        except ValueError as e:
-            if "pickle" in str(e).lower():
+        except _DECODE_ERRORS as e:
+            if isinstance(e, ValueError) and "pickle" in str(e).lower():
                 raise QfitError(f"{self._where(rel)}: contains pickled objects; refused") from None
-            raise _SkippableError(f"cannot read array file ({_first_line(e)})") from None
-        except (OSError, EOFError, zipfile.BadZipFile, RuntimeError) as e:
             raise _SkippableError(f"cannot read array file ({_first_line(e)})") from None
         sample = {}
         for name, key in targets.items():
             array = loaded[key]
             what = "array" if key is None else f"key '{key}'"
             self._check_array_shape_dtype(rel, what, name, array.shape, array.dtype)
-            values = np.asarray(array, dtype=np.float32).reshape((1,) + tuple(self.input_shapes[name][1:]))
+            with np.errstate(over="ignore", invalid="ignore"):  # overflow to Inf is reported just below
+                values = np.asarray(array, dtype=np.float32).reshape((1,) + tuple(self.input_shapes[name][1:]))
             if not np.isfinite(values).all():
                 bad = "NaN" if np.isnan(values).any() else "Inf"
                 raise QfitError(f"{self._where(rel)}: {what} contains {bad} (after conversion to float32)")
@@ -525,6 +546,12 @@ class DataFolder:
 
 class _PickledError(Exception):
     pass
+
+
+def _npz_members(archive: zipfile.ZipFile) -> dict[str, str]:
+    """.npz key -> zip member; like np.savez, a key is the member name without '.npy'. Other members
+    (none are written by numpy) are ignored."""
+    return {m[:-4]: m for m in archive.namelist() if m.endswith(".npy")}
 
 
 def _read_npy_header(f) -> tuple[tuple[int, ...], np.dtype]:
@@ -578,7 +605,7 @@ def _resolve_inside(path_text: str, where: str, line: int) -> str:
     path = path_text.replace("\\", "/")
     if "\x00" in path:
         raise QfitError(f"{where}: line {line}: file path contains a NUL character")
-    if path.startswith("/") or (len(path) > 1 and path[1] == ":"):
+    if path.startswith("/") or (len(path) > 1 and path[0].isalpha() and path[1] == ":"):
         raise QfitError(f"{where}: line {line}: '{path_text}' is an absolute path; paths are relative to the "
                         f"data folder")
     normal = posixpath.normpath(path)
@@ -621,8 +648,10 @@ def parse_labels_csv(text: str, where: str, data_files: set[str], folder: str = 
 
     all_integers = all(_parse_index(label) is not None for _, _, label in entries)
     if all_integers:
-        names = class_names
-        limit = num_classes if num_classes is not None else (len(class_names) if class_names else None)
+        # Integers are the indices themselves. Subfolders need not be classes then (a folder split by
+        # day, say), so they neither bound the indices nor name them.
+        names = None
+        limit = num_classes
         labels = {}
         for line, rel, label_text in entries:
             index = _parse_index(label_text)
