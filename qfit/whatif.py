@@ -358,7 +358,8 @@ def tiling_what_if(loaded, plan, options, result) -> dict:
 
 def _stage_peak(memory, p: int, split: str, regions: dict, shapes: dict) -> int:
     """Peak of the tiled stage (nodes 0..p in the default order) for one tile: the graph input and
-    the split tensor stay whole in SRAM, every other buffer is cut to the tile's region."""
+    the split tensor stay whole in SRAM for the whole stage, every other buffer is cut to the tile's
+    region (rows x columns it needs, all channels)."""
     problem = memory.problem
     split_buffer = memory.buffer_of[split]
     buffers, index = [], {}
@@ -377,7 +378,9 @@ def _stage_peak(memory, p: int, split: str, regions: dict, shapes: dict) -> int:
                 elif m not in regions:
                     size = max(size, buf.size_bytes if readers else 0)
         index[b] = len(buffers)
-        buffers.append(schedule.Buffer(buf.name, size, buf.producer, readers, is_output=(b == split_buffer),
+        # The split tensor collects every tile's part: it is held from the first tile's first step.
+        producer = None if b == split_buffer else buf.producer
+        buffers.append(schedule.Buffer(buf.name, size, producer, readers, is_output=(b == split_buffer),
                                        members=buf.members, dtype=buf.dtype))
     sub = schedule.MemoryProblem(problem.node_names[:p + 1], problem.preds[:p + 1], buffers,
                                  problem.extra_bytes[:p + 1])
