@@ -1,0 +1,517 @@
+"""equalize: two published post-training improvements, each optional and each measured before/after.
+
+Both come from Nagel, van Baalen, Blankevoort, Welling, "Data-Free Quantization Through Weight
+Equalization and Bias Correction", ICCV 2019.
+
+Cross-layer equalization (CLE, paper section 4.1). For two layers y = W2 f(W1 x + b1) + b2 whose
+activation f is positively homogeneous (ReLU: f(x / s) = f(x) / s for s > 0), dividing output channel
+i of layer 1 by s_i and multiplying input channel i of layer 2 by s_i leaves the function unchanged.
+With r1_i, r2_i the ranges (max |w|) of those two weight slices, s_i = sqrt(r1_i / r2_i) makes both
+equal to sqrt(r1_i r2_i), so per-tensor weight quantization no longer wastes its levels on a few wide
+channels (the failure the paper shows for MobileNetV2's depthwise convolutions). Pairs in a chain
+(Conv -> DWConv -> Conv) share a layer, so the pairs are swept repeatedly until the scales settle.
+
+ReLU6 (Clip(x, 0, 6)) is not positively homogeneous: the paper replaces it by ReLU, which changes the
+float model. qfit keeps the user's float function instead, with a constraint measured on the
+calibration data: a channel whose pre-activation reaches the clip is not scaled, and a channel that
+stays below it (max M_i) is scaled only while M_i / S_i stays below the clip too. On every calibration
+sample the clip then never engages where a scale was applied, so the function is unchanged there.
+
+Bias absorption (section 4.1.2). After equalization some channels of h = ReLU(W1 x + b1) carry a large
+positive offset that widens the per-tensor activation range. Where a channel's pre-activation never
+falls below c_i > 0 on the calibration data, h_i = (h_i - c_i) + c_i, so c_i moves out of layer 1's bias
+and into layer 2's (b2 += W2 c). The paper bounds c_i with batch-norm statistics (beta - 3 gamma); BN is
+folded here, so qfit uses the exact per-channel minimum seen on the calibration data. Moving a
+constant through layer 2 is exact only when layer 2 has no zero padding (padding would see 0, not
+c_i), so absorption is limited to such layers (1x1 convolutions, unpadded convolutions, Gemm).
+
+Empirical bias correction (section 4.2). Weight rounding shifts the expected output of a layer:
+E[W' x] - E[W x] = (W' - W) E[x]. The mean of each layer's int8 input is measured on the calibration
+data with the int8 model (so upstream quantization is included), the shift per output channel is
+(W' - W) applied to that mean (a convolution of the mean input map, so padding is accounted for
+exactly), and it is subtracted from the layer's bias. A layer kept float gets no correction.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+from onnx import TensorProto, helper, numpy_helper
+
+from qfit import ops
+from qfit.load import LoadedModel
+from qfit.plan import Plan
+from qfit.quantize import QuantizedModel, quantize_weight
+from qfit.run import Runner
+
+EQUALIZED_OPS = ("Conv", "Gemm")
+SCALE_TOLERANCE = 1e-6   # stop sweeping when no scale moves by more than this (relative)
+MAX_SWEEPS = 200
+
+
+# ---- graph helpers --------------------------------------------------------------------------------
+
+def with_constants(loaded: LoadedModel, values: dict[str, np.ndarray] | None = None,
+                   new_biases: dict[str, tuple[str, np.ndarray]] | None = None) -> LoadedModel:
+    """A copy of `loaded` with initializers replaced (`values`) and bias inputs added to nodes
+    (`new_biases`: node -> (new initializer name, values)). The input object is not changed."""
+    values = dict(values or {})
+    new_biases = dict(new_biases or {})
+    model = onnx.ModelProto()
+    model.CopyFrom(loaded.model)
+    graph = model.graph
+    for init in graph.initializer:
+        if init.name in values:
+            init.CopyFrom(numpy_helper.from_array(np.asarray(values[init.name], np.float32), init.name))
+    for node in graph.node:
+        if node.name in new_biases:
+            name, array = new_biases[node.name]
+            graph.initializer.append(numpy_helper.from_array(np.asarray(array, np.float32), name))
+            while len(node.input) < 2:
+                node.input.append("")
+            if len(node.input) == 2:
+                node.input.append(name)
+            else:
+                node.input[2] = name
+    constants = dict(loaded.constants)
+    shapes = dict(loaded.shapes)
+    elem_types = dict(loaded.elem_types)
+    for name, array in values.items():
+        constants[name] = np.asarray(array, np.float32)
+    for name, array in new_biases.values():
+        constants[name] = np.asarray(array, np.float32)
+        shapes[name] = tuple(np.shape(array))
+        elem_types[name] = TensorProto.FLOAT
+    return LoadedModel(path=loaded.path, model=model, shapes=shapes, elem_types=elem_types,
+                       constants=constants, notes=list(loaded.notes), original_opset=loaded.original_opset)
+
+
+def _uses(graph: onnx.GraphProto) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for node in graph.node:
+        for name in node.input:
+            counts[name] = counts.get(name, 0) + 1
+    for out in graph.output:
+        counts[out.name] = counts.get(out.name, 0) + 1
+    return counts
+
+
+def _fresh_name(loaded: LoadedModel, base: str, taken: set[str]) -> str:
+    names = taken | set(loaded.constants) | set(loaded.shapes)
+    name, i = base, 1
+    while name in names:
+        name, i = f"{base}_{i}", i + 1
+    taken.add(name)
+    return name
+
+
+# ---- the weight layout both layer types are handled in --------------------------------------------
+# (out, in_per_group, k...) as for Conv; a Gemm weight is brought to (N, K).
+
+def _as_out_in(node: onnx.NodeProto, w: np.ndarray) -> np.ndarray:
+    if node.op_type == "Gemm" and not ops.attr(node, "transB", 0):
+        return w.T.copy()
+    return w.copy()
+
+
+def _from_out_in(node: onnx.NodeProto, w: np.ndarray) -> np.ndarray:
+    if node.op_type == "Gemm" and not ops.attr(node, "transB", 0):
+        return w.T.copy()
+    return w
+
+
+def _groups(node: onnx.NodeProto) -> int:
+    return int(ops.attr(node, "group", 1)) if node.op_type == "Conv" else 1
+
+
+def _input_slices(node: onnx.NodeProto, w: np.ndarray, channels: int) -> list[tuple[slice, int]]:
+    """For each input channel i of `node`: (rows of the weight that read it, column within the group)."""
+    groups = _groups(node)
+    per_group_in = w.shape[1]
+    per_group_out = w.shape[0] // groups
+    return [(slice((i // per_group_in) * per_group_out, (i // per_group_in + 1) * per_group_out),
+             i % per_group_in) for i in range(channels)]
+
+
+def _no_padding(node: onnx.NodeProto) -> bool:
+    if node.op_type == "Gemm":
+        return True
+    auto_pad = ops.attr(node, "auto_pad", b"NOTSET")
+    auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else auto_pad
+    if auto_pad in ("SAME_UPPER", "SAME_LOWER"):
+        kernel = ops.attr(node, "kernel_shape", None)
+        return kernel is not None and all(k == 1 for k in kernel)
+    return all(p == 0 for p in ops.attr(node, "pads", []) or [])
+
+
+# ---- pairs ----------------------------------------------------------------------------------------
+
+@dataclass
+class Pair:
+    """Two layers with only a positively homogeneous activation (or nothing) between them."""
+
+    first: str
+    second: str
+    activation: str              # "relu", "relu6"/"clip" (capped), or "none"
+    pre_activation: str          # the first layer's output tensor
+    channels: int
+    cap: float | None = None     # the activation's upper clip, when it has one
+
+
+def _clip_bounds(node: onnx.NodeProto, loaded: LoadedModel) -> tuple[float | None, float | None]:
+    def value(index: int, attr_name: str):
+        if len(node.input) > index and node.input[index]:
+            v = loaded.constant(node.input[index])
+            return None if v is None else float(np.asarray(v))
+        v = ops.attr(node, attr_name, None)
+        return None if v is None else float(v)
+    return value(1, "min"), value(2, "max")
+
+
+def find_pairs(loaded: LoadedModel) -> list[Pair]:
+    """Conv/Gemm -> [ReLU | ReLU6 | Clip(0, c)] -> Conv/Gemm chains whose weights can be rescaled."""
+    graph = loaded.graph
+    uses = _uses(graph)
+    outputs = set(loaded.output_names)
+    consumers: dict[str, list[onnx.NodeProto]] = {}
+    for node in graph.node:
+        for name in node.input:
+            consumers.setdefault(name, []).append(node)
+
+    def sole_consumer(tensor: str):
+        users = consumers.get(tensor, [])
+        return users[0] if len(users) == 1 and tensor not in outputs else None
+
+    def rescalable(node: onnx.NodeProto) -> bool:
+        if node.op_type not in EQUALIZED_OPS or len(node.input) < 2:
+            return False
+        w = loaded.constant(node.input[1])
+        if w is None or w.dtype != np.float32 or uses.get(node.input[1], 0) != 1:
+            return False
+        if node.op_type == "Gemm" and (ops.attr(node, "transA", 0) or w.ndim != 2):
+            return False
+        if len(node.input) > 2 and node.input[2]:
+            b = loaded.constant(node.input[2])
+            if b is None or b.ndim != 1 or uses.get(node.input[2], 0) != 1:
+                return False
+        return True
+
+    pairs = []
+    for first in graph.node:
+        if not rescalable(first) or not first.output:
+            continue
+        pre = first.output[0]
+        nxt = sole_consumer(pre)
+        if nxt is None:
+            continue
+        activation, cap, link = "none", None, pre
+        if nxt.op_type == "Relu":
+            activation, link = "relu", nxt.output[0]
+        elif nxt.op_type == "Clip":
+            lo, hi = _clip_bounds(nxt, loaded)
+            if lo is None or lo != 0.0:
+                continue
+            activation, cap, link = ("relu", None, nxt.output[0]) if hi is None else (
+                "relu6" if hi == 6.0 else "clip", hi, nxt.output[0])
+        if link != pre:
+            nxt = sole_consumer(link)
+            if nxt is None:
+                continue
+        second = nxt
+        if not rescalable(second) or second.input[0] != link:
+            continue
+        w1 = _as_out_in(first, loaded.constants[first.input[1]])
+        w2 = _as_out_in(second, loaded.constants[second.input[1]])
+        channels = w1.shape[0]
+        if first.op_type != second.op_type or w2.shape[1] * _groups(second) != channels:
+            continue
+        pairs.append(Pair(first.name, second.name, activation, pre, channels, cap))
+    return pairs
+
+
+def channel_extremes(loaded: LoadedModel, tensors: list[str], data, batch_size: int
+                     ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """Per-channel (axis 1) min and max of `tensors` over `data` (one streaming float pass)."""
+    if not tensors:
+        return {}
+    runner = Runner(loaded.model, tensors, batch_size=batch_size)
+    lo: dict[str, np.ndarray] = {}
+    hi: dict[str, np.ndarray] = {}
+    for batch in data.batches(batch_size):
+        values = runner(batch.inputs)
+        for name in tensors:
+            v = np.asarray(values[name])
+            axes = tuple(a for a in range(v.ndim) if a != 1)
+            vmin, vmax = v.min(axis=axes).astype(np.float64), v.max(axis=axes).astype(np.float64)
+            lo[name] = vmin if name not in lo else np.minimum(lo[name], vmin)
+            hi[name] = vmax if name not in hi else np.maximum(hi[name], vmax)
+    return {name: (lo[name], hi[name]) for name in tensors if name in lo}
+
+
+def _channel_range_spread(w_out_in: np.ndarray) -> float:
+    """max over channels / min over channels of max |w|: what per-tensor quantization suffers from."""
+    r = np.abs(w_out_in.reshape(w_out_in.shape[0], -1)).max(axis=1)
+    r = r[r > 0]
+    return float(r.max() / r.min()) if r.size else 1.0
+
+
+@dataclass
+class EqualizationResult:
+    loaded: LoadedModel
+    pairs: list[dict] = field(default_factory=list)
+    sweeps: int = 0
+    absorbed_channels: int = 0
+    skipped: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        return {"pairs": self.pairs, "pairs_equalized": len(self.pairs), "sweeps": self.sweeps,
+                "absorbed_channels": self.absorbed_channels, "skipped": self.skipped}
+
+
+def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool = True) -> EqualizationResult:
+    """Cross-layer equalization and bias absorption (see the module docstring).
+
+    `data` (batches of calibration inputs) is needed for pairs through a clip (ReLU6) and for bias
+    absorption; without it only ReLU and linear pairs are equalized and nothing is absorbed.
+    """
+    pairs = find_pairs(loaded)
+    result = EqualizationResult(loaded=loaded)
+    if not pairs:
+        return result
+    nodes = {n.name: n for n in loaded.graph.node}
+    needs_data = [p.pre_activation for p in pairs if p.cap is not None or (absorb and p.activation != "none")]
+    extremes = channel_extremes(loaded, sorted(set(needs_data)), data, batch_size) if data is not None else {}
+    kept = []
+    for p in pairs:
+        if p.cap is not None and p.pre_activation not in extremes:
+            result.skipped.append(f"{p.first} -> {p.second}: {p.activation} between them and no calibration "
+                                  f"data to check where the clip engages")
+        else:
+            kept.append(p)
+    pairs = kept
+
+    weights: dict[str, np.ndarray] = {}
+    biases: dict[str, np.ndarray] = {}
+    for name in {p.first for p in pairs} | {p.second for p in pairs}:
+        node = nodes[name]
+        weights[name] = _as_out_in(node, loaded.constants[node.input[1]]).astype(np.float64)
+        channels = weights[name].shape[0]
+        has_bias = len(node.input) > 2 and node.input[2]
+        biases[name] = (loaded.constants[node.input[2]].astype(np.float64) if has_bias
+                        else np.zeros(channels, np.float64))
+    spread_before = {p.first: _channel_range_spread(weights[p.first]) for p in pairs}
+
+    # Bounds on the cumulative scale S_i of each pair's channels (1 = untouched).
+    lower, upper, cumulative = {}, {}, {}
+    for k, p in enumerate(pairs):
+        lower[k] = np.zeros(p.channels)
+        upper[k] = np.full(p.channels, np.inf)
+        if p.cap is not None:
+            _, top = extremes[p.pre_activation]
+            engaged = top > p.cap
+            # the clip must stay out of reach on the data: M_i / S_i <= cap
+            lower[k] = np.where(engaged, 1.0, np.maximum(top, 0.0) / p.cap)
+            upper[k] = np.where(engaged, 1.0, np.inf)
+        cumulative[k] = np.ones(p.channels)
+
+    sweeps = 0
+    for sweeps in range(1, MAX_SWEEPS + 1):
+        moved = 0.0
+        for k, p in enumerate(pairs):
+            w1, w2 = weights[p.first], weights[p.second]
+            r1 = np.abs(w1.reshape(p.channels, -1)).max(axis=1)
+            slices = _input_slices(nodes[p.second], w2, p.channels)
+            r2 = np.array([np.abs(w2[rows, col]).max() for rows, col in slices])
+            s = np.ones(p.channels)
+            ok = (r1 > 0) & (r2 > 0)
+            s[ok] = np.sqrt(r1[ok] / r2[ok])
+            target = np.clip(cumulative[k] * s, lower[k], upper[k])
+            s = np.where(target > 0, target / cumulative[k], 1.0)
+            cumulative[k] *= s
+            shape = (-1,) + (1,) * (w1.ndim - 1)
+            w1 /= s.reshape(shape)
+            biases[p.first] /= s
+            for (rows, col), si in zip(slices, s):
+                w2[rows, col] *= si
+            moved = max(moved, float(np.max(np.abs(np.log(s)))) if s.size else 0.0)
+        if moved < SCALE_TOLERANCE:
+            break
+    result.sweeps = sweeps
+
+    absorbed = 0
+    if absorb:
+        for k, p in enumerate(pairs):
+            if p.activation == "none" or p.pre_activation not in extremes:
+                continue
+            second = nodes[p.second]
+            if not _no_padding(second):
+                continue
+            if second.op_type == "Gemm" and (float(ops.attr(second, "beta", 1.0)) == 0.0):
+                continue
+            bottom, top = extremes[p.pre_activation]
+            bottom, top = bottom / cumulative[k], top / cumulative[k]
+            c = np.maximum(bottom, 0.0)
+            if p.cap is not None:
+                c = np.where(top <= p.cap, c, 0.0)  # a channel that reaches the clip keeps its offset
+            if not np.any(c > 0):
+                continue
+            w2 = weights[p.second]
+            alpha = float(ops.attr(second, "alpha", 1.0)) if second.op_type == "Gemm" else 1.0
+            beta = float(ops.attr(second, "beta", 1.0)) if second.op_type == "Gemm" else 1.0
+            shift = np.zeros(w2.shape[0])
+            for (rows, col), ci in zip(_input_slices(second, w2, p.channels), c):
+                if ci > 0:
+                    shift[rows] += w2[rows, col].reshape(w2[rows, col].shape[0], -1).sum(axis=1) * ci
+            biases[p.first] -= c
+            biases[p.second] += shift * alpha / beta
+            absorbed += int(np.sum(c > 0))
+    result.absorbed_channels = absorbed
+
+    values: dict[str, np.ndarray] = {}
+    new_biases: dict[str, tuple[str, np.ndarray]] = {}
+    taken: set[str] = set()
+    for name, w in weights.items():
+        node = nodes[name]
+        values[node.input[1]] = _from_out_in(node, w).astype(np.float32)
+        if len(node.input) > 2 and node.input[2]:
+            values[node.input[2]] = biases[name].astype(np.float32)
+        elif np.any(biases[name] != 0):
+            new_biases[name] = (_fresh_name(loaded, f"{name}_bias_equalized", taken), biases[name].astype(np.float32))
+    result.loaded = with_constants(loaded, values, new_biases)
+    result.loaded.notes.append(f"cross-layer equalization: {len(pairs)} layer pairs rescaled"
+                               + (f", {absorbed} channel offsets absorbed" if absorbed else ""))
+    result.pairs = [{"first": p.first, "second": p.second, "activation": p.activation, "channels": p.channels,
+                     "range_spread_before": round(spread_before[p.first], 3),
+                     "range_spread_after": round(_channel_range_spread(weights[p.first]), 3),
+                     "channels_fixed_by_clip": int(np.sum(upper[k] == 1.0)) if p.cap is not None else 0}
+                    for k, p in enumerate(pairs)]
+    return result
+
+
+# ---- empirical bias correction ---------------------------------------------------------------------
+
+@dataclass
+class BiasFix:
+    """The corrected bias of one layer."""
+
+    node: str
+    bias: str                  # initializer name holding the bias (new when the layer had none)
+    added: bool                # the layer had no bias input (or shared one): a new initializer
+    original: np.ndarray       # bias before correction (zeros when added)
+    corrected: np.ndarray
+    shift: np.ndarray          # (W' - W) E[x] per output channel: what was subtracted
+
+
+@dataclass
+class BiasCorrection:
+    fixes: dict[str, BiasFix] = field(default_factory=dict)
+    samples: int = 0
+
+    def structure(self, loaded: LoadedModel) -> LoadedModel:
+        """`loaded` with a (still uncorrected) bias input on every corrected layer, so that a plan made
+        from it has an int32 bias wherever a correction may go."""
+        added = {f.node: (f.bias, f.original) for f in self.fixes.values() if f.added}
+        return with_constants(loaded, None, added) if added else loaded
+
+    def values_for(self, plan: Plan) -> dict[str, np.ndarray]:
+        """Corrected bias values for the layers `plan` quantizes (a float layer keeps its own bias)."""
+        return {f.bias: f.corrected for f in self.fixes.values() if f.node not in plan.float_nodes}
+
+    def to_dict(self) -> dict:
+        shifts = [float(np.max(np.abs(f.shift))) for f in self.fixes.values()]
+        return {"layers_corrected": len(self.fixes), "samples": self.samples,
+                "largest_shift": round(max(shifts), 6) if shifts else 0.0,
+                "layers": [{"layer": f.node, "max_abs_shift": round(float(np.max(np.abs(f.shift))), 6),
+                            "mean_abs_shift": round(float(np.mean(np.abs(f.shift))), 6)}
+                           for f in self.fixes.values()]}
+
+
+def _conv_of_mean(node: onnx.NodeProto, mean_input: np.ndarray, error: np.ndarray) -> np.ndarray:
+    """Conv(mean input map, weight error) with the node's own attributes, averaged per output channel."""
+    attrs = {a.name: helper.get_attribute_value(a) for a in node.attribute}
+    x = mean_input[None].astype(np.float32)
+    graph = helper.make_graph(
+        [helper.make_node("Conv", ["x", "w"], ["y"], **attrs)], "shift",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, list(x.shape))],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, None)],
+        [numpy_helper.from_array(error.astype(np.float32), "w")])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 21)], ir_version=10)
+    so = ort.SessionOptions()
+    so.log_severity_level = 3
+    session = ort.InferenceSession(model.SerializeToString(), so, providers=["CPUExecutionProvider"])
+    y = session.run(["y"], {"x": x})[0][0]
+    return y.reshape(y.shape[0], -1).mean(axis=1).astype(np.float64)
+
+
+def bias_correction(loaded: LoadedModel, plan: Plan, quantized: QuantizedModel, data, batch_size: int = 16
+                    ) -> BiasCorrection:
+    """Per-layer bias shifts from the int8 model's own inputs on `data` (see the module docstring)."""
+    graph = loaded.graph
+    uses = _uses(graph)
+    targets = []
+    for node in graph.node:
+        if node.op_type not in EQUALIZED_OPS or node.name in plan.float_nodes:
+            continue
+        if (node.name, 1) not in plan.weights or node.input[0] not in plan.activations:
+            continue
+        if node.op_type == "Gemm" and (ops.attr(node, "transA", 0) or float(ops.attr(node, "beta", 1.0)) == 0.0):
+            continue
+        targets.append(node)
+    result = BiasCorrection()
+    if not targets:
+        return result
+    names = list(dict.fromkeys(quantized.dequantized[n.input[0]] for n in targets))
+    runner = Runner(quantized.model, names, faithful=True, batch_size=batch_size)
+    sums: dict[str, np.ndarray] = {}
+    count = 0
+    for batch in data.batches(batch_size):
+        values = runner(batch.inputs)
+        for name in names:
+            s = np.asarray(values[name], np.float64).sum(axis=0)
+            sums[name] = s if name not in sums else sums[name] + s
+        count += next(iter(batch.inputs.values())).shape[0]
+    result.samples = count
+    if count == 0:
+        return result
+    taken: set[str] = set()
+    for node in targets:
+        mean_input = sums[quantized.dequantized[node.input[0]]] / count
+        wq = plan.weights[(node.name, 1)]
+        w = loaded.constants[node.input[1]]
+        q, scale = quantize_weight(w, wq.axis, wq.bits)
+        shape = [1] * w.ndim
+        if wq.axis is not None:
+            shape[wq.axis] = -1
+        error = q.astype(np.float64) * np.asarray(scale, np.float64).reshape(shape) - w.astype(np.float64)
+        if node.op_type == "Conv":
+            shift = _conv_of_mean(node, mean_input, error)
+        else:
+            alpha = float(ops.attr(node, "alpha", 1.0))
+            beta = float(ops.attr(node, "beta", 1.0))
+            b_matrix = error.T if ops.attr(node, "transB", 0) else error   # (K, N)
+            shift = alpha * (mean_input.reshape(-1) @ b_matrix) / beta
+        has_bias = len(node.input) > 2 and node.input[2] and uses.get(node.input[2], 0) == 1
+        if has_bias:
+            bias_name, original, added = node.input[2], loaded.constants[node.input[2]].astype(np.float64), False
+        else:
+            shared = len(node.input) > 2 and node.input[2]
+            original = (loaded.constants[node.input[2]].astype(np.float64) if shared
+                        else np.zeros(shift.shape[0], np.float64))
+            bias_name, added = _fresh_name(loaded, f"{node.name}_bias_corrected", taken), True
+        corrected = (original - shift).astype(np.float32)
+        result.fixes[node.name] = BiasFix(node.name, bias_name, added, original.astype(np.float32),
+                                          corrected, shift)
+    return result
+
+
+def weight_range_ratio(loaded: LoadedModel, node_name: str) -> float:
+    """max / min per-output-channel weight range of one layer (1.0 = all channels alike)."""
+    node = next(n for n in loaded.graph.node if n.name == node_name)
+    return _channel_range_spread(_as_out_in(node, loaded.constants[node.input[1]]))
+
+
+def finite_or_none(value: float) -> float | None:
+    return None if value is None or not math.isfinite(value) else value

@@ -1,0 +1,351 @@
+"""repair: try fixes for the layers that lose the accuracy, and keep the cheapest that reach the target.
+
+Candidate repairs, per layer, for the most sensitive layers (qfit.sensitivity's ranking):
+  method:<m>          another calibration method for the layer's output quantizer (minmax, percentile,
+                      mse, entropy); all four come from the one calibration pass, and cost no bytes
+  int16_activations   the layer's output stored as int16 (ONNX QDQ int16, opset 21)
+  keep_float          the layer (and a ReLU fused into it) runs in float32
+
+Greedy search: from the all-int8 plan, every candidate is applied on top of the choices made so far,
+the QDQ model is rebuilt from the edited PlanOptions, and its drop is measured on the search samples
+(faithful onnxruntime path, as every int8 figure). The step that removes the most drop per byte
+(extra flash + extra SRAM, from qfit.budget on the edited plan) is accepted; a step that would put
+flash or SRAM over its limit is never accepted. The search stops when the drop is within the target,
+when no candidate lowers it, or at the step limit, and says which.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+from typing import Callable
+
+import numpy as np
+
+from qfit.errors import QfitError
+from qfit.load import TARGET_OPSET, LoadedModel
+from qfit.observe import TensorStats, observe
+from qfit.plan import METHODS, Plan, PlanOptions, make_plan
+from qfit.quantize import QuantizedModel, build_qdq, calibrated_ranges
+from qfit.run import Runner
+from qfit.sizes import format_size
+
+DEFAULT_LAYERS_TRIED = 8
+DEFAULT_MAX_STEPS = 12
+DEFAULT_SEARCH_SAMPLES = 1000
+KEEP_FLOAT, INT16 = "keep_float", "int16_activations"
+BENEFIT_EPSILON_PT = 1e-9
+
+
+# ---- from PlanOptions to a QDQ model ---------------------------------------------------------------
+
+@dataclass
+class ModelBuilder:
+    """Everything that turns a PlanOptions into a QDQ model: the graph, the calibration statistics and
+    the run's method, and (optionally) corrected biases for the layers a plan quantizes."""
+
+    loaded: LoadedModel
+    stats: dict[str, TensorStats]
+    method: str
+    percentile: float
+    calib: object | None = None      # calibration DataFolder, for tensors a new plan needs
+    batch_size: int = 16
+    bias_correction: object | None = None  # qfit.equalize.BiasCorrection
+    extra_calibration_passes: int = 0
+
+    def plan(self, options: PlanOptions) -> Plan:
+        return make_plan(self.loaded, options)
+
+    def ensure_stats(self, plan: Plan) -> None:
+        """Observe the tensors a plan quantizes that the first calibration pass did not (e.g. the
+        output of a MaxPool that no longer shares an int16 input's quantizer)."""
+        missing = [t for t in plan.calibrated_tensors() if t not in self.stats]
+        if not missing:
+            return
+        if self.calib is None:
+            raise QfitError(f"calibration: no statistics for tensor '{missing[0]}' and no calibration data")
+        runner = Runner(self.loaded.model, missing, batch_size=self.batch_size)
+        self.stats.update(observe(runner, self.calib.batches(self.batch_size), missing))
+        self.extra_calibration_passes += 1
+
+    def build(self, options: PlanOptions) -> tuple[Plan, QuantizedModel]:
+        plan = self.plan(options)
+        self.ensure_stats(plan)
+        ranges = calibrated_ranges(plan, self.stats, self.method, self.percentile)
+        source = self.loaded
+        if self.bias_correction is not None and self.bias_correction.fixes:
+            from qfit.equalize import with_constants
+            source = with_constants(self.loaded, self.bias_correction.values_for(plan))
+        return plan, build_qdq(source, plan, ranges)
+
+
+# ---- byte costs ------------------------------------------------------------------------------------
+
+class ByteCounter:
+    """Flash total and SRAM peak of a plan, from qfit.budget, cached per precision choice."""
+
+    def __init__(self, loaded: LoadedModel, budget_options):
+        from qfit import budget
+        self._budget = budget
+        self.loaded = loaded
+        self.options = replace(budget_options, what_if=False)
+        self._cache: dict[tuple, tuple[int, int]] = {}
+
+    @staticmethod
+    def key(plan: Plan) -> tuple:
+        return (tuple(sorted(plan.float_nodes)),
+                tuple(sorted((t, q.bits, q.shared_from or "") for t, q in plan.activations.items())),
+                tuple(sorted(plan.fused)))
+
+    def __call__(self, plan: Plan) -> tuple[int, int]:
+        key = self.key(plan)
+        if key not in self._cache:
+            result = self._budget.analyze(self.loaded, plan, self.options)
+            self._cache[key] = (int(result.flash["total_bytes"]), int(result.sram["peak_bytes"]))
+        return self._cache[key]
+
+
+# ---- candidates ------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Candidate:
+    layer: str
+    action: str            # "method:<m>" | "int16_activations" | "keep_float"
+    tensor: str | None     # the activation the action applies to (None for keep_float)
+    nodes: tuple[str, ...] = ()  # nodes made float by keep_float (the layer and a fused ReLU)
+
+    def apply(self, options: PlanOptions) -> PlanOptions:
+        if self.action == KEEP_FLOAT:
+            return replace(options, float_nodes=frozenset(options.float_nodes | set(self.nodes)))
+        if self.action == INT16:
+            return replace(options, activation_bits={**options.activation_bits, self.tensor: 16})
+        method = self.action.split(":", 1)[1]
+        return replace(options, activation_methods={**options.activation_methods, self.tensor: method})
+
+    def describe(self) -> str:
+        if self.action == KEEP_FLOAT:
+            return "keep float"
+        if self.action == INT16:
+            return "int16 activations"
+        return f"calibrate with {self.action.split(':', 1)[1]}"
+
+
+def layer_nodes(loaded: LoadedModel, plan: Plan, row: dict) -> tuple[str, ...]:
+    """The node of a layer row plus the ReLU/ReLU6 node whose output the row measures (fused)."""
+    nodes = [row["name"]]
+    if row["tensor"] in plan.fused.values():
+        clamp = next((n.name for n in loaded.graph.node if n.output and n.output[0] == row["tensor"]), None)
+        if clamp and clamp != row["name"]:
+            nodes.append(clamp)
+    return tuple(nodes)
+
+
+def candidates_for(loaded: LoadedModel, plan: Plan, row: dict, run_method: str,
+                   methods: tuple[str, ...] = METHODS) -> list[Candidate]:
+    if row["name"] in plan.float_nodes:
+        return []
+    tensor = row["tensor"]
+    out = []
+    q = plan.activations.get(tensor)
+    if q is not None and q.shared_from is None:
+        current = q.method or run_method
+        out += [Candidate(row["name"], f"method:{m}", tensor) for m in methods if m != current]
+    if q is not None and q.bits == 8 and _int16_available(loaded):
+        out.append(Candidate(row["name"], INT16, tensor))
+    out.append(Candidate(row["name"], KEEP_FLOAT, None, layer_nodes(loaded, plan, row)))
+    return out
+
+
+def _int16_available(loaded: LoadedModel) -> bool:
+    for imp in loaded.model.opset_import:
+        if imp.domain in ("", "ai.onnx"):
+            return imp.version >= TARGET_OPSET
+    return False
+
+
+def fallback_costs(builder: ModelBuilder, base: PlanOptions, layers: list[dict], counter: ByteCounter) -> dict:
+    """Per layer row: extra flash and SRAM bytes of keeping it float / storing its output as int16,
+    each against the all-int8 plan (None where the repair does not apply)."""
+    base_plan = builder.plan(base)
+    base_flash, base_sram = counter(base_plan)
+    costs = {}
+    for row in layers:
+        entry = {"float": None, "int16": None}
+        if row["name"] not in base_plan.float_nodes:
+            for cand in candidates_for(builder.loaded, base_plan, row, builder.method, methods=()):
+                flash, sram = counter(builder.plan(cand.apply(base)))
+                key = "float" if cand.action == KEEP_FLOAT else "int16"
+                entry[key] = {"flash": flash - base_flash, "sram": sram - base_sram}
+        costs[row["name"]] = entry
+    return costs
+
+
+# ---- measuring a candidate -------------------------------------------------------------------------
+
+class DropMeter:
+    """The drop (points) of any QDQ model against the float model, on fixed search samples.
+
+    Float predictions are computed once; a candidate then costs one faithful int8 pass. The batches
+    are kept in memory when they fit `max_cached_bytes`, else re-read from the folder each time.
+    """
+
+    def __init__(self, reference: LoadedModel, data, batch_size: int, max_cached_bytes: int = 256 << 20):
+        self.output = reference.output_names[0]
+        self.batch_size = batch_size
+        self.data = data
+        runner = Runner(reference.model, [self.output], batch_size=batch_size)
+        self.float_top1: list[np.ndarray] = []
+        self.labels: list[np.ndarray] | None = []
+        self.cached: list | None = []
+        cached_bytes = 0
+        for batch in data.batches(batch_size):
+            out = runner(batch.inputs)[self.output]
+            self.float_top1.append(np.argmax(out.reshape(out.shape[0], -1), axis=1))
+            if batch.labels is None:
+                self.labels = None
+            elif self.labels is not None:
+                self.labels.append(np.asarray(batch.labels))
+            if self.cached is not None:
+                cached_bytes += sum(v.nbytes for v in batch.inputs.values())
+                self.cached = self.cached + [batch.inputs] if cached_bytes <= max_cached_bytes else None
+        self.samples = int(sum(p.size for p in self.float_top1))
+        self.labelled = self.labels is not None and bool(self.labels)
+        flat = np.concatenate(self.float_top1) if self.float_top1 else np.zeros(0, int)
+        self.float_correct = int(np.sum(flat == np.concatenate(self.labels))) if self.labelled else 0
+        self.evaluations = 0
+
+    def _inputs(self):
+        if self.cached is not None:
+            return iter(self.cached)
+        return (b.inputs for b in self.data.batches(self.batch_size))
+
+    def __call__(self, quantized: QuantizedModel) -> float:
+        name = quantized.dequantized.get(self.output, self.output)
+        runner = Runner(quantized.model, [name], faithful=True, batch_size=self.batch_size)
+        correct = agree = 0
+        for i, inputs in enumerate(self._inputs()):
+            out = runner(inputs)[name]
+            top1 = np.argmax(out.reshape(out.shape[0], -1), axis=1)
+            agree += int(np.sum(top1 == self.float_top1[i]))
+            if self.labelled:
+                correct += int(np.sum(top1 == self.labels[i]))
+        self.evaluations += 1
+        if not self.samples:
+            return 0.0
+        if self.labelled:
+            return 100.0 * (self.float_correct - correct) / self.samples
+        return 100.0 * (self.samples - agree) / self.samples
+
+
+# ---- the greedy search -----------------------------------------------------------------------------
+
+@dataclass
+class RepairResult:
+    options: PlanOptions
+    steps: list[dict] = field(default_factory=list)
+    drop_before_pt: float = 0.0
+    drop_after_pt: float = 0.0
+    reached: bool = False
+    reason: str = ""
+    candidates_evaluated: int = 0
+    refused: list[dict] = field(default_factory=list)   # candidates that helped but broke a limit
+
+
+def _over(value: int, limit: int | None) -> int:
+    return 0 if limit is None else max(0, value - limit)
+
+
+def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[dict],
+                  measure_drop: Callable[[QuantizedModel], float], counter: ByteCounter, target_drop_pt: float,
+                  flash_limit_bytes: int | None, sram_limit_bytes: int | None,
+                  layers_tried: int = DEFAULT_LAYERS_TRIED, max_steps: int = DEFAULT_MAX_STEPS,
+                  progress: Callable[[str], None] | None = None) -> RepairResult:
+    """Greedy search described in the module docstring; `ranked_rows` are layer rows, worst first."""
+    current = base
+    plan, quantized = builder.build(current)
+    drop = measure_drop(quantized)
+    flash, sram = counter(plan)
+    result = RepairResult(options=current, drop_before_pt=drop, drop_after_pt=drop)
+    if drop <= target_drop_pt:
+        result.reached = True
+        result.reason = f"the int8 drop {drop:.2f} pt is already within the target {target_drop_pt:.2f} pt"
+        return result
+    rows = ranked_rows[:layers_tried]
+    refused_best: dict | None = None
+    while len(result.steps) < max_steps:
+        best = None
+        refused_best = None
+        for row in rows:
+            for cand in candidates_for(builder.loaded, plan, row, builder.method):
+                options = cand.apply(current)
+                cand_plan, cand_q = builder.build(options)
+                cand_drop = measure_drop(cand_q)
+                result.candidates_evaluated += 1
+                cand_flash, cand_sram = counter(cand_plan)
+                benefit = drop - cand_drop
+                if progress is not None:
+                    progress(f"{cand.layer} {cand.describe()}: {cand_drop:.2f} pt")
+                if benefit <= BENEFIT_EPSILON_PT:
+                    continue
+                flash_cost, sram_cost = cand_flash - flash, cand_sram - sram
+                # "Breaking" a limit: ending over it, and more over it than before the step.
+                breaks = []
+                if _over(cand_flash, flash_limit_bytes) > _over(flash, flash_limit_bytes):
+                    breaks.append(("flash", cand_flash, flash_limit_bytes))
+                if _over(cand_sram, sram_limit_bytes) > _over(sram, sram_limit_bytes):
+                    breaks.append(("SRAM", cand_sram, sram_limit_bytes))
+                info = {"candidate": cand, "options": options, "plan": cand_plan, "drop": cand_drop,
+                        "flash": cand_flash, "sram": cand_sram, "flash_cost": flash_cost, "sram_cost": sram_cost,
+                        "benefit": benefit, "breaks": breaks}
+                if breaks:
+                    if refused_best is None or benefit > refused_best["benefit"]:
+                        refused_best = info
+                    continue
+                cost = max(0, flash_cost) + max(0, sram_cost)
+                score = (benefit / max(cost, 1), benefit)
+                if best is None or score > best["score"]:
+                    best = {**info, "score": score}
+        if best is None:
+            result.reason = _no_step_reason(drop, target_drop_pt, len(rows), refused_best)
+            break
+        cand = best["candidate"]
+        result.steps.append({
+            "layer": cand.layer, "action": cand.action, "tensor": cand.tensor,
+            "drop_before_pt": round(drop, 4), "drop_after_pt": round(best["drop"], 4),
+            "flash_cost_bytes": int(best["flash_cost"]), "sram_cost_bytes": int(best["sram_cost"]),
+            "flash_total_bytes": int(best["flash"]), "sram_peak_bytes": int(best["sram"])})
+        current, plan, drop = best["options"], best["plan"], best["drop"]
+        flash, sram = best["flash"], best["sram"]
+        if drop <= target_drop_pt:
+            result.reached = True
+            result.reason = (f"drop {drop:.2f} pt is within the target {target_drop_pt:.2f} pt after "
+                             f"{len(result.steps)} step{'s' if len(result.steps) != 1 else ''}")
+            break
+    else:
+        result.reason = (f"stopped at the limit of {max_steps} steps with the drop at {drop:.2f} pt "
+                         f"(target {target_drop_pt:.2f} pt)")
+    if refused_best is not None and not result.reached:
+        result.refused.append(_refused_entry(refused_best))
+    result.options = current
+    result.drop_after_pt = drop
+    return result
+
+
+def _refused_entry(info: dict) -> dict:
+    cand = info["candidate"]
+    return {"layer": cand.layer, "action": cand.action, "drop_after_pt": round(info["drop"], 4),
+            "flash_total_bytes": int(info["flash"]), "sram_peak_bytes": int(info["sram"]),
+            "breaks": [{"memory": what, "bytes": int(used), "limit_bytes": int(limit)}
+                       for what, used, limit in info["breaks"]]}
+
+
+def _no_step_reason(drop: float, target: float, layers: int, refused: dict | None) -> str:
+    which = f"no repair of the {layers} most sensitive layer{'s' if layers != 1 else ''} lowers the drop further"
+    if refused is not None:
+        which += " within the flash and SRAM limits"
+    text = f"{which}: it stays at {drop:.2f} pt (target {target:.2f} pt)"
+    if refused is not None:
+        cand = refused["candidate"]
+        over = "; ".join(f"{what} {format_size(used)} > limit {format_size(limit)}"
+                         for what, used, limit in refused["breaks"])
+        text += (f"; the best refused step, {cand.layer} {cand.describe()} (drop {refused['drop']:.2f} pt), "
+                 f"would need {over}")
+    return text
