@@ -177,12 +177,14 @@ def resolution_what_if(loaded, plan, options) -> dict:
 
 # ---- (b) tiled leading layers -------------------------------------------------------------------
 
-def _window(node, in_shape, out_shape):
+def _window(node, in_shape, out_shape, weight_shape=None):
     """[(kernel, stride, dilation, pad_begin)] for the two spatial dims of a Conv/MaxPool/AveragePool."""
     if node.op_type == "Conv":
         kernel = ops.attr(node, "kernel_shape", None)
-        if kernel is None:
-            return None
+        if kernel is None:   # optional: the weight's trailing dims
+            if weight_shape is None or len(weight_shape) != 4:
+                return None
+            kernel = weight_shape[2:]
         kernel = list(kernel)
     else:
         kernel = list(ops.attr(node, "kernel_shape", [1, 1]))
@@ -207,6 +209,10 @@ def _window(node, in_shape, out_shape):
     return result
 
 
+def _weight_shape(node, shapes):
+    return shapes.get(node.input[1]) if node.op_type == "Conv" and len(node.input) > 1 else None
+
+
 def _input_interval(lo: int, hi: int, k: int, s: int, dil: int, pad: int, size: int) -> tuple[int, int]:
     """Input rows [lo', hi'] an output interval [lo, hi] reads: lo*s - pad .. hi*s - pad + (k-1)*dil,
     clipped to the tensor (padding rows are not stored)."""
@@ -219,7 +225,7 @@ def _tileable(node, shapes, constants) -> bool:
         return False
     acts = [n for n in node.input if n and n not in constants]
     if node.op_type in _WINDOWED:
-        return len(acts) == 1 and _window(node, shapes[acts[0]], out) is not None
+        return len(acts) == 1 and _window(node, shapes[acts[0]], out, _weight_shape(node, shapes)) is not None
     if node.op_type in _ELEMENTWISE:
         for name in node.input:
             if not name:
@@ -286,7 +292,8 @@ def _regions(nodes, p: int, split: str, tile, shapes, constants) -> dict[str, tu
         (r0, r1), (c0, c1) = outs[0]
         acts = [n for n in node.input if n and n not in constants]
         if node.op_type in _WINDOWED:
-            (kh, sh, dh, ph), (kw, sw, dw, pw) = _window(node, shapes[acts[0]], shapes[node.output[0]])
+            (kh, sh, dh, ph), (kw, sw, dw, pw) = _window(node, shapes[acts[0]], shapes[node.output[0]],
+                                                         _weight_shape(node, shapes))
             h, w = shapes[acts[0]][2], shapes[acts[0]][3]
             needed = [(_input_interval(r0, r1, kh, sh, dh, ph, h), _input_interval(c0, c1, kw, sw, dw, pw, w))]
         else:
