@@ -103,9 +103,39 @@ def shapes_at(light: onnx.ModelProto, loaded, input_name: str, new_shape) -> dic
         if tt.HasField("shape") and all(d.HasField("dim_value") and d.dim_value > 0 for d in tt.shape.dim):
             shapes[vi.name] = tuple(int(d.dim_value) for d in tt.shape.dim)
     needed = [o for node in loaded.graph.node for o in node.output if o]
-    if any(o not in shapes for o in needed):
+    if any(o not in shapes for o in needed) or not _consistent(loaded, shapes):
         return None
     return shapes
+
+
+def _numel(shape) -> int:
+    n = 1
+    for d in shape:
+        n *= int(d)
+    return n
+
+
+def _consistent(loaded, shapes: dict) -> bool:
+    """Shape inference accepts some graphs that cannot run at another size (a Reshape to a fixed
+    element count, a Gemm whose K no longer matches): reject those."""
+    for node in loaded.graph.node:
+        get = [shapes.get(n) if n else None for n in node.input]
+        out = shapes.get(node.output[0]) if node.output else None
+        if node.op_type in ("Reshape", "Flatten", "Squeeze", "Unsqueeze"):
+            if get and get[0] is not None and out is not None and _numel(get[0]) != _numel(out):
+                return False
+        elif node.op_type == "Gemm" and len(get) > 1 and get[0] and get[1]:
+            k_a = get[0][0] if ops.attr(node, "transA", 0) else get[0][-1]
+            k_b = get[1][-1] if ops.attr(node, "transB", 0) else get[1][0]
+            if k_a != k_b:
+                return False
+        elif node.op_type == "MatMul" and len(get) > 1 and get[0] and get[1] and len(get[1]) >= 2:
+            if get[0][-1] != get[1][-2]:
+                return False
+        elif node.op_type == "Conv" and len(get) > 1 and get[0] and get[1]:
+            if get[0][1] != get[1][1] * int(ops.attr(node, "group", 1)):
+                return False
+    return True
 
 
 def resolution_what_if(loaded, plan, options) -> dict:
@@ -131,7 +161,7 @@ def resolution_what_if(loaded, plan, options) -> dict:
         shapes = shapes_at(light, loaded, name, new_shape)
         if shapes is None:
             row = {"height": h, "width": w, "arena_bytes": None, "peak_bytes": None,
-                   "fits": None, "note": "shape inference fails at this size"}
+                   "fits": None, "note": "shape inference fails or gives inconsistent shapes at this size"}
         else:
             memory = budget.build_memory_model(loaded, plan, quick, shapes)
             best, live, arena = budget.sram_for(memory, quick)
