@@ -144,8 +144,18 @@ def count_params(loaded: LoadedModel, plan: Plan) -> int:
     MatMul) and of every float constant of a layer kept float (e.g. an LSTM's W, R, B)."""
     seen: set[str] = set()
     total = 0
+    producer = {o: n for n in loaded.graph.node for o in n.output}
     for node in loaded.graph.node:
         roles = _weight_role_inputs(node)
+        if node.op_type == "Add":
+            # MatMul has no bias input: an Add of a constant right after a MatMul with constant
+            # weights is that layer's bias (as exporters write a Linear layer).
+            for i, name in enumerate(node.input):
+                other = node.input[1 - i] if len(node.input) == 2 else None
+                prev = producer.get(other) if other else None
+                if (name in loaded.constants and prev is not None and prev.op_type == "MatMul"
+                        and any(n in loaded.constants for n in prev.input)):
+                    roles = roles | {i}
         for i, name in enumerate(node.input):
             if not name or name in seen or name not in loaded.constants:
                 continue

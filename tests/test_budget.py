@@ -250,6 +250,7 @@ def test_arena_plan_has_no_overlap_on_every_zoo_model(name):
     assert result.arena["bytes"] >= result.order["best_peak_bytes"]
     # params/MACs against the zoo's own hand counts (tests/zoo.py, computed as each layer is added)
     assert result.model["macs"] == zm.macs
+    assert result.model["params"] == zm.params
 
 
 @pytest.mark.parametrize("name", ["mobilenet_v2_small"])
