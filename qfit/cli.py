@@ -108,12 +108,17 @@ def _run_check(args) -> int:
         batch_size=max(1, args.batch), per_channel=not args.per_tensor, symmetric_activations=args.symmetric,
         max_drop_pt=args.max_drop, threshold=args.threshold, skip_bad=args.skip_bad,
         progress=not args.quiet and sys.stderr.isatty())
-    files.ensure_writable_dir(args.out)
+    files.check_output_dir(args.out)
     result = pipeline.check(options)
     sections = {"text": [budget.render_text(result.budget)], "markdown": [budget.render_markdown(result.budget)]}
-    files.write_bytes(result.model_file, result.quantized.model.SerializeToString())
-    files.write_text(os.path.join(args.out, "report.md"), report_module.markdown(result.report, sections["markdown"]))
-    files.write_json(os.path.join(args.out, "report.json"), result.report)
+    # Everything is rendered first and written in one staged step, so a refusal or an interrupt at
+    # any point leaves --out as it was (the folder is only created now).
+    contents = {result.model_file: result.quantized.model.SerializeToString(),
+                os.path.join(args.out, "report.md"):
+                    report_module.markdown(result.report, sections["markdown"]).encode("utf-8"),
+                os.path.join(args.out, "report.json"): files.json_bytes(result.report)}
+    files.ensure_writable_dir(args.out)
+    files.write_files(contents)
     print(report_module.summary_text(result.report, sections["text"]))
     print(f"\nWrote {result.model_file}, {os.path.join(args.out, 'report.json')}, "
           f"{os.path.join(args.out, 'report.md')}")
@@ -139,8 +144,8 @@ def _on_signal(signum, frame):
 
 def main(argv: list[str] | None = None) -> int:
     signal.signal(signal.SIGTERM, _on_signal)
-    parser = build_parser()
     try:
+        parser = build_parser()
         args = parser.parse_args(argv)
         if args.command == "check":
             return _run_check(args)

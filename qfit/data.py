@@ -266,12 +266,15 @@ class DataFolder:
         """Yield batches of up to `batch_size` samples, reading files only as each batch is built."""
         if batch_size <= 0:
             raise QfitError(f"{self.role} data: batch size must be positive, got {batch_size}")
-        labels = [None] * len(self.files) if self.labels is None else [int(v) for v in self.labels]
         pending: list[dict[str, np.ndarray]] = []
         pending_files: list[str] = []
         pending_labels: list[int] = []
-        # Iterate over a snapshot: a file skipped mid-pass is dropped from self.files for later passes.
-        for rel, label in list(zip(self.files, labels)):
+        # A file skipped mid-pass replaces self.files/self.labels with new objects for later passes, so
+        # holding the current ones is the snapshot; nothing per file is copied (memory must not grow
+        # with the file count).
+        files, labels = self.files, self.labels
+        for index, rel in enumerate(files):
+            label = None if labels is None else int(labels[index])
             try:
                 sample = self._read_sample(rel)
             except _SkippableError as e:

@@ -163,11 +163,24 @@ def weight_bytes_by_node(loaded: LoadedModel, plan: Plan) -> dict[str, int]:
     return totals
 
 
+def output_paths(options: CheckOptions) -> dict[str, str]:
+    """The files a check writes into the output folder, keyed as in the report's "outputs"."""
+    stem = os.path.splitext(os.path.basename(options.model_path))[0]
+    return {"model": os.path.join(options.out_dir, f"{stem}_int8.onnx"),
+            "report_json": os.path.join(options.out_dir, "report.json"),
+            "report_md": os.path.join(options.out_dir, "report.md")}
+
+
 def check(options: CheckOptions) -> CheckResult:
     """Run the whole job; raise QfitError for bad input."""
     if options.method not in METHODS:
         raise QfitError(f"--method: unknown method '{options.method}' (choose from {', '.join(METHODS)})")
-    model_abs = os.path.abspath(options.model_path)
+    model_file = output_paths(options)["model"]
+    model_real = os.path.realpath(options.model_path)
+    for path in output_paths(options).values():
+        # checked before any work: the input model must never be replaced by an output
+        if os.path.realpath(path) == model_real:
+            raise QfitError(f"--out: writing {path} would overwrite the input model {options.model_path}")
     loaded = load_model(options.model_path, options.input_shapes)
     plan = make_plan(loaded, PlanOptions(per_channel=options.per_channel,
                                          symmetric_activations=options.symmetric_activations))
@@ -199,11 +212,6 @@ def check(options: CheckOptions) -> CheckResult:
     for row in layers:
         row["weight_bytes_int8"] = weight_bytes.get(row["name"], 0)
         row.update(sums[row["tensor"]].to_dict())
-
-    stem = os.path.splitext(os.path.basename(options.model_path))[0]
-    model_file = os.path.join(options.out_dir, f"{stem}_int8.onnx")
-    if os.path.abspath(model_file) == model_abs:
-        raise QfitError(f"--out: the int8 model would overwrite the input model {options.model_path}")
 
     failed = []
     if not memory["flash"]["fits"]:

@@ -78,6 +78,11 @@ def summary_text(report: dict, extra_sections: list[str] | None = None) -> str:
     if report["evaluation"].get("reused_calibration_data"):
         lines.append("Note: evaluated on the calibration data itself (no separate --eval folder): "
                      "figures are optimistic.")
+    skipped = {role: report[role].get("skipped", 0) for role in ("calibration", "evaluation")}
+    if any(skipped.values()):
+        # a skipped file changes what the figures measure: say so where the user looks
+        lines.append(f"Note: --skip-bad skipped {skipped['calibration']} calibration and "
+                     f"{skipped['evaluation']} evaluation files as unreadable (listed in report.json).")
     worst = worst_layers(report, 5)
     if worst:
         lines += ["", "Lowest-SQNR layers (int8 model vs float, accumulated):",
@@ -114,7 +119,7 @@ def markdown(report: dict, extra_sections: list[str] | None = None) -> str:
             f"- activations: {q['activations']}; calibration method: {q['method']}"
             + (f" ({q['percentile']})" if q.get("percentile") else ""),
             f"- calibration data: {report['calibration']['folder']} ({report['calibration']['samples']} samples"
-            + (f", {len(report['calibration']['skipped'])} skipped" if report['calibration'].get('skipped') else "")
+            + (f", {report['calibration']['skipped']} skipped" if report['calibration'].get('skipped') else "")
             + ")"]
     ev = report["evaluation"]
     out += ["", "## Accuracy", "",
