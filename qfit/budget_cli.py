@@ -29,6 +29,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--input-shape", action="append", metavar="NAME=1x3x96x96",
                    help="fix the dimensions of an input (repeatable)")
     p.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
+    p.add_argument("--html", metavar="FILE", help="also write the figures as a self-contained HTML page to FILE")
     p.add_argument("--alignment", type=int, default=4, metavar="N", help="arena alignment in bytes (default 4)")
     p.add_argument("--no-views", action="store_true", help="count Reshape/Flatten/Squeeze/Unsqueeze outputs as copies")
     p.add_argument("--no-inplace", action="store_true", help="elementwise ops never overwrite their input")
@@ -108,6 +109,14 @@ def run(args) -> int:
               **result.to_dict()}
     if args.json:
         write_json_atomic(args.json, report)
+    if args.html:
+        from qfit import files, html
+        folder = os.path.dirname(os.path.abspath(args.html))
+        if not os.path.isdir(folder):
+            raise QfitError(f"--html: folder {folder} does not exist")
+        if os.path.isdir(args.html):
+            raise QfitError(f"--html: {args.html} is a folder")
+        files.write_text(args.html, html.render_html(report))
     kind = "QDQ model, figures as quantized" if is_qdq else "float model, figures as if quantized to int8"
     render = budget.render_markdown if args.markdown else budget.render_text
     print(f"{args.model}: {kind}\n")

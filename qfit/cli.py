@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import signal
 import sys
@@ -88,7 +89,7 @@ def _preprocess_from(args):
 
 
 def _run_check(args) -> int:
-    from qfit import files, pipeline, report as report_module, budget
+    from qfit import files, html, pipeline, report as report_module, budget
     from qfit.load import parse_input_shapes
     from qfit.run import set_threads
 
@@ -117,11 +118,14 @@ def _run_check(args) -> int:
                 os.path.join(args.out, "report.md"):
                     report_module.markdown(result.report, sections["markdown"]).encode("utf-8"),
                 os.path.join(args.out, "report.json"): files.json_bytes(result.report)}
+    # report.html is rendered from report.json's own bytes: the page cannot show another figure.
+    report_json = json.loads(contents[os.path.join(args.out, "report.json")])
+    contents[os.path.join(args.out, "report.html")] = html.render_html(report_json).encode("utf-8")
     files.ensure_writable_dir(args.out)
     files.write_files(contents)
     print(report_module.summary_text(result.report, sections["text"]))
     print(f"\nWrote {result.model_file}, {os.path.join(args.out, 'report.json')}, "
-          f"{os.path.join(args.out, 'report.md')}")
+          f"{os.path.join(args.out, 'report.md')}, {os.path.join(args.out, 'report.html')}")
     return result.exit_code
 
 
