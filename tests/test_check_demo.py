@@ -90,7 +90,7 @@ def _run_cli(*args):
 
 
 def test_missing_calibration_folder_exits_2_with_one_line(tmp_path):
-    r = _run_cli(*_demo_args(tmp_path)[:3], "--calib", str(tmp_path / "nope"), "--flash", "1MiB",
+    r = _run_cli(*_demo_args(tmp_path)[:2], "--calib", str(tmp_path / "nope"), "--flash", "1MiB",
                  "--sram", "256KiB", "--out", str(tmp_path / "o"))
     assert r.returncode == 2 and "Traceback" not in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and "nope" in r.stderr
