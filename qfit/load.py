@@ -476,5 +476,9 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     unsupported = sorted({n.op_type for n in work.graph.node if not ops.is_supported(n.op_type)})
     if unsupported:
         notes.append(f"kept float (not supported in int8): {', '.join(unsupported)}")
+    for node in work.graph.node:
+        reason = ops.float_reason(node, lambda name: name in constants) if ops.is_supported(node.op_type) else None
+        if reason:
+            notes.append(f"kept float: {node.name} ({reason})")
     return LoadedModel(path=path, model=work, shapes=shapes, elem_types=elem_types,
                        constants=constants, notes=notes, original_opset=original_opset)

@@ -113,6 +113,26 @@ def _matmul_axis(node: NodeProto, shape: Shape) -> int | None:
     return len(shape) - 1 if len(shape) >= 2 else None
 
 
+def _matmul_first_operand_axis(node: NodeProto, shape: Shape) -> int | None:
+    # a constant A in A @ x: output rows follow A's rows (axis -2)
+    return len(shape) - 2 if len(shape) >= 2 else None
+
+
+def _single_channel_axis(node: NodeProto, shape: Shape) -> int | None:
+    # a broadcast constant (PRelu slope): per channel along its one axis longer than 1, if any
+    long_axes = [i for i, d in enumerate(shape) if d > 1]
+    return long_axes[0] if len(long_axes) == 1 else None
+
+
+# ---- per-op output rules: node -> True when the output takes its input's quantizer ------------
+
+def _resize_is_nearest(node: NodeProto) -> bool:
+    # nearest-neighbour resizing copies input values, so the input's scale holds; linear and cubic
+    # modes compute new values and need a range of their own
+    mode = attr(node, "mode", b"nearest")
+    return (mode.decode() if isinstance(mode, bytes) else str(mode)) == "nearest"
+
+
 @dataclass(frozen=True)
 class OpInfo:
     """What one op type means for quantization, memory and cost (see the module docstring)."""
@@ -125,6 +145,9 @@ class OpInfo:
     cost_kind: str = "none"                   # "macs" | "elementwise" | "none"
     quantized_inputs: tuple[int, ...] | None = (0,)  # activation inputs that get an int8 input
     takes_fused_activation: bool = False      # a following ReLU/ReLU6 folds into this op's output
+    shares_when: Callable[[NodeProto], bool] | None = None  # output "shared" for nodes where this holds
+    inputs_share_output: bool = False         # inputs stored with the output's quantizer (Concat)
+    constant_inputs: tuple[int, ...] = ()     # inputs an int8 kernel needs as constants, else float
     note: str = ""
 
     @property
@@ -141,18 +164,20 @@ OPS: dict[str, OpInfo] = {
     "Conv": OpInfo(weights={1: _axis0}, bias=2, cost=_conv_macs, **_MAC),
     "ConvTranspose": OpInfo(weights={1: _conv_transpose_axis}, bias=2, cost=_conv_transpose_macs, **_MAC),
     "Gemm": OpInfo(weights={1: _gemm_axis}, bias=2, cost=_gemm_macs, **_MAC),
-    "MatMul": OpInfo(weights={1: _matmul_axis}, cost=_matmul_macs, quantized_inputs=_ALL, **_MAC),
+    "MatMul": OpInfo(weights={0: _matmul_first_operand_axis, 1: _matmul_axis}, cost=_matmul_macs,
+                     quantized_inputs=_ALL, **_MAC),
     # elementwise arithmetic between activations (or an activation and a constant)
     "Add": OpInfo(quantized_inputs=_ALL, alias="inplace", takes_fused_activation=True, **_ELT),
     "Sub": OpInfo(quantized_inputs=_ALL, alias="inplace", takes_fused_activation=True, **_ELT),
     "Mul": OpInfo(quantized_inputs=_ALL, alias="inplace", **_ELT),
-    "Div": OpInfo(quantized_inputs=(0,), alias="inplace", note="divisor kept float (a constant)", **_ELT),
+    "Div": OpInfo(quantized_inputs=(0,), alias="inplace", constant_inputs=(1,),
+                  note="by a constant only (a multiply by its reciprocal); by a tensor it stays float", **_ELT),
     # activations an int8 kernel folds into the previous layer's output clamp
     "Relu": OpInfo(output="fused", alias="inplace", **_ELT),
     "Clip": OpInfo(output="fused", alias="inplace", **_ELT),
     # activations with their own output range
     "LeakyRelu": OpInfo(alias="inplace", **_ELT),
-    "PRelu": OpInfo(alias="inplace", **_ELT),
+    "PRelu": OpInfo(weights={1: _single_channel_axis}, alias="inplace", note="slope stored as int8", **_ELT),
     "Sigmoid": OpInfo(alias="inplace", **_ELT),
     "HardSigmoid": OpInfo(alias="inplace", **_ELT),
     "HardSwish": OpInfo(alias="inplace", **_ELT),
@@ -165,7 +190,9 @@ OPS: dict[str, OpInfo] = {
     "GlobalMaxPool": OpInfo(output="shared", cost=_reduce_ops, cost_kind="elementwise"),
     "ReduceMean": OpInfo(cost=_reduce_ops, cost_kind="elementwise"),
     # data movement: values unchanged, so the scale is the input's
-    "Concat": OpInfo(quantized_inputs=_ALL, note="inputs requantized to the output scale"),
+    "Concat": OpInfo(quantized_inputs=_ALL, inputs_share_output=True,
+                     note="inputs stored with the output's scale (a byte copy) when only the Concat reads "
+                          "them; otherwise requantized to it"),
     "Split": OpInfo(output="shared"),
     "Slice": OpInfo(output="shared"),
     "Reshape": OpInfo(output="shared", alias="view"),
@@ -174,7 +201,8 @@ OPS: dict[str, OpInfo] = {
     "Unsqueeze": OpInfo(output="shared", alias="view"),
     "Transpose": OpInfo(output="shared"),
     "Pad": OpInfo(output="shared", note="constant pad value must be representable (0 is)"),
-    "Resize": OpInfo(quantized_inputs=(0,), note="nearest mode keeps the scale; linear modes requantize"),
+    "Resize": OpInfo(quantized_inputs=(0,), shares_when=_resize_is_nearest,
+                     note="nearest mode keeps the input's scale; linear and cubic modes requantize"),
 }
 
 # Op types removed or folded by qfit.load before anything else sees the graph.
@@ -193,6 +221,26 @@ def info(op_type: str) -> OpInfo:
 
 def is_supported(op_type: str) -> bool:
     return op_type in OPS
+
+
+def output_kind(node: NodeProto) -> str:
+    """The table's output kind for this node: "own", "shared", "fused" or "float"."""
+    entry = info(node.op_type)
+    if entry.shares_when is not None and entry.shares_when(node):
+        return "shared"
+    return entry.output
+
+
+def float_reason(node: NodeProto, is_constant: Callable[[str], bool]) -> str | None:
+    """Why `node` stays float (its op type is unknown, or an input that must be a constant is not),
+    or None when it can be quantized."""
+    entry = info(node.op_type)
+    if not entry.is_quantized:
+        return "not supported in int8"
+    for i in entry.constant_inputs:
+        if i < len(node.input) and node.input[i] and not is_constant(node.input[i]):
+            return f"input {i} of {node.op_type} is not a constant"
+    return None
 
 
 def weight_inputs(node: NodeProto) -> dict[int, Callable]:

@@ -108,9 +108,10 @@ def compared_layers(loaded: LoadedModel, plan: Plan) -> list[dict]:
     rows = []
     absorbed = set(plan.fused.values())
     for node in loaded.graph.node:
-        if not node.output or node.output[0] in absorbed:
+        # the first output present (an LSTM may leave its sequence output Y unused, "")
+        out = next((o for o in node.output if o), None)
+        if out is None or out in absorbed:
             continue
-        out = node.output[0]
         tensor = plan.fused.get(out, out)
         if tensor not in loaded.shapes:
             continue

@@ -114,7 +114,7 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
     graph = loaded.graph
     plan = Plan()
     for node in graph.node:
-        if not ops.is_supported(node.op_type):
+        if ops.float_reason(node, lambda name: name in loaded.constants) is not None:
             plan.unsupported_nodes.add(node.name)
             plan.float_nodes.add(node.name)
         elif node.name in options.float_nodes:
@@ -157,7 +157,7 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
             source = node.input[0] if node.input else None
             if node.op_type in ("Relu", "Clip") and source in plan.fused:
                 pass  # the fused clamp's output is the producer's requantized output: its own range
-            elif entry.output == "shared" and source in plan.activations:
+            elif ops.output_kind(node) == "shared" and source in plan.activations:
                 if plan.activations[source].bits == options.activation_bits.get(out, 8):
                     shared_from = source
             plan.activations[out] = new_quant(out, shared_from)
@@ -178,7 +178,28 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
             if (bias in loaded.constants and weight is not None and node.input[0] in plan.activations
                     and loaded.constants[bias].ndim == 1):
                 plan.biases[(node.name, entry.bias)] = bias
+    _match_input_scales(plan, graph, quantized, consumers, set(loaded.input_names) | outputs)
     return plan
+
+
+def _match_input_scales(plan: Plan, graph, quantized: set[str], consumers: dict[str, list[NodeProto]],
+                        fixed: set[str]) -> None:
+    """Inputs of an op whose int8 kernel copies bytes from several inputs (Concat) take its output's
+    quantizer, so no input is requantized. An input keeps its own when something else reads it, when
+    it is a graph input or output, or when its quantizer is already another tensor's."""
+    for node in graph.node:
+        if node.name not in quantized or not ops.info(node.op_type).inputs_share_output or not node.output:
+            continue
+        out = node.output[0]
+        target = plan.activations.get(out)
+        if target is None or target.shared_from is not None:
+            continue
+        for name in node.input:
+            q = plan.activations.get(name)
+            if (q is None or q.shared_from is not None or name in fixed or q.bits != target.bits
+                    or [c.name for c in consumers.get(name, [])] != [node.name]):
+                continue
+            q.shared_from = out
 
 
 def describe_node_precision(plan: Plan, node: NodeProto) -> str:

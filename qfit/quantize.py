@@ -92,6 +92,33 @@ def quantize_bias(b: np.ndarray, input_scale: float, weight_scale: np.ndarray) -
     return q, safe.astype(np.float32)
 
 
+QDQ_MIN_OPSET = 21  # first opset whose QuantizeLinear/DequantizeLinear accept int16
+
+
+def qdq_opset_imports(model: onnx.ModelProto) -> list[onnx.OperatorSetIdProto]:
+    """The model's opset imports, with the default domain lowered to the oldest opset (>= 21) at
+    which every op of the float graph still has the definition it has at the model's own opset.
+
+    The graph means exactly the same at that opset, and the QuantizeLinear/DequantizeLinear added
+    by qfit get the most widely implemented version: a model exported at the newest opset would
+    otherwise ask runtimes for a QuantizeLinear revision they may not have yet (onnxruntime 1.32
+    implements it up to opset 27, onnx 1.23 defines 28)."""
+    imports = []
+    for imp in model.opset_import:
+        if imp.domain not in ("", "ai.onnx") or imp.version <= QDQ_MIN_OPSET:
+            imports.append(helper.make_opsetid(imp.domain, imp.version))
+            continue
+        needed = QDQ_MIN_OPSET
+        for node in model.graph.node:
+            if node.domain in ("", "ai.onnx"):
+                try:
+                    needed = max(needed, onnx.defs.get_schema(node.op_type, imp.version, "").since_version)
+                except Exception:  # an op onnx does not know here: keep the model's opset
+                    needed = imp.version
+        imports.append(helper.make_opsetid(imp.domain, min(needed, imp.version)))
+    return imports
+
+
 def calibrated_ranges(plan: Plan, stats: dict[str, TensorStats], method: str,
                       percentile: float) -> dict[str, tuple[float, float]]:
     """Range of every tensor with its own quantizer, by its own method or the run's method."""
@@ -205,8 +232,9 @@ def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, fl
     kept_inits = [init for init in graph.initializer if init.name in referenced]
     new_graph = helper.make_graph(new_nodes, graph.name or "qfit", list(graph.input), list(graph.output),
                                   kept_inits + initializers)
-    model = helper.make_model(new_graph, opset_imports=list(loaded.model.opset_import),
-                              producer_name="qfit", ir_version=loaded.model.ir_version)
+    opsets = qdq_opset_imports(loaded.model)
+    model = helper.make_model(new_graph, opset_imports=opsets, producer_name="qfit",
+                              ir_version=max(loaded.model.ir_version, helper.find_min_ir_version_for(opsets)))
     for prop in loaded.model.metadata_props:
         model.metadata_props.append(prop)
     result.model = model
