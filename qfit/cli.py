@@ -57,6 +57,17 @@ def _check_parser(sub) -> None:
     p.add_argument("--threads", type=int, default=0, help="onnxruntime threads (0 = its default)")
     p.add_argument("--skip-bad", action="store_true", help="skip unreadable data files (counted in the report)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
+    p.add_argument("--equalize", action="store_true",
+                   help="cross-layer equalization + bias absorption before quantizing (Nagel et al. 2019)")
+    p.add_argument("--bias-correction", action="store_true",
+                   help="correct each layer's bias for its weight rounding, from the calibration data")
+    p.add_argument("--isolated-samples", type=int, default=64, metavar="N",
+                   help="evaluation samples for the one-layer-at-a-time sweep (0 = skip it)")
+    p.add_argument("--no-repair", action="store_true", help="do not search repairs when the drop exceeds --max-drop")
+    p.add_argument("--repair-layers", type=int, default=8, metavar="N", help="most sensitive layers the repair tries")
+    p.add_argument("--repair-steps", type=int, default=12, metavar="N", help="repair steps accepted at most")
+    p.add_argument("--repair-samples", type=int, default=1000, metavar="N",
+                   help="evaluation samples the repair search measures on")
 
 
 def _preprocess_from(args):
@@ -108,7 +119,9 @@ def _run_check(args) -> int:
         preprocess=_preprocess_from(args), limit=args.limit, eval_limit=args.eval_limit, seed=args.seed,
         batch_size=max(1, args.batch), per_channel=not args.per_tensor, symmetric_activations=args.symmetric,
         max_drop_pt=args.max_drop, threshold=args.threshold, skip_bad=args.skip_bad,
-        progress=not args.quiet and sys.stderr.isatty())
+        progress=not args.quiet and sys.stderr.isatty(), equalize=args.equalize,
+        bias_correction=args.bias_correction, isolated_samples=args.isolated_samples, repair=not args.no_repair,
+        repair_layers=args.repair_layers, repair_steps=args.repair_steps, repair_samples=args.repair_samples)
     files.check_output_dir(args.out)
     result = pipeline.check(options)
     sections = {"text": [budget.render_text(result.budget)], "markdown": [budget.render_markdown(result.budget)]}
@@ -142,6 +155,12 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _one_line(message: str) -> str:
+    """Escape what would break the line or drive the terminal: a quoted value or file name can hold
+    a line break (also \x85, \u2028) or an escape sequence."""
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in message)
+
+
 def _on_signal(signum, frame):
     raise KeyboardInterrupt
 
@@ -159,7 +178,7 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return EXIT_BAD_INPUT
     except QfitError as e:
-        print(f"qfit: error: {e}", file=sys.stderr)
+        print(f"qfit: error: {_one_line(str(e))}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("qfit: interrupted; no partial output was left", file=sys.stderr)

@@ -6,12 +6,15 @@ Candidate repairs, per layer, for the most sensitive layers (qfit.sensitivity's 
   int16_activations   the layer's output stored as int16 (ONNX QDQ int16, opset 21)
   keep_float          the layer (and a ReLU fused into it) runs in float32
 
-Greedy search: from the all-int8 plan, every candidate is applied on top of the choices made so far,
-the QDQ model is rebuilt from the edited PlanOptions, and its drop is measured on the search samples
-(faithful onnxruntime path, as every int8 figure). The step that removes the most drop per byte
-(extra flash + extra SRAM, from qfit.budget on the edited plan) is accepted; a step that would put
-flash or SRAM over its limit is never accepted. The search stops when the drop is within the target,
-when no candidate lowers it, or at the step limit, and says which.
+Greedy search: from the all-int8 plan, every candidate is applied on top of the choices made so far
+and the QDQ model is rebuilt from the edited PlanOptions. Candidates are first screened on the samples
+a change can flip: those the current int8 model gets wrong plus the lowest-margin others (a one-layer
+change rarely flips a confident prediction). The best-scoring few are then measured on all search
+samples (faithful onnxruntime path, as every int8 figure), and the one that removes the most drop per
+byte (extra flash + extra SRAM, from qfit.budget on the edited plan) is accepted. A step that would
+put flash or SRAM over its limit is never accepted. The search stops when the drop is within the
+target, when no candidate lowers it, or at the step limit, and says which. The log holds only full
+measurements; the pipeline then measures the written model on the whole evaluation set.
 """
 from __future__ import annotations
 
@@ -33,6 +36,8 @@ DEFAULT_MAX_STEPS = 12
 DEFAULT_SEARCH_SAMPLES = 1000
 KEEP_FLOAT, INT16 = "keep_float", "int16_activations"
 BENEFIT_EPSILON_PT = 1e-9
+DEFAULT_SCREEN_EXTRA = 64        # lowest-margin samples screened besides the ones already lost
+DEFAULT_VERIFIED_PER_STEP = 3    # best-screened candidates measured on every search sample
 
 
 # ---- from PlanOptions to a QDQ model ---------------------------------------------------------------
@@ -138,18 +143,33 @@ def layer_nodes(loaded: LoadedModel, plan: Plan, row: dict) -> tuple[str, ...]:
     return tuple(nodes)
 
 
+def owned_tensors(loaded: LoadedModel, plan: Plan, row: dict) -> list[str]:
+    """Activation quantizers a layer row owns: its output, and inputs that no int8 layer produces
+    (a graph input, the output of a float layer) — the same ownership as qfit.sensitivity's switches."""
+    tensors = [row["tensor"]]
+    node = next((n for n in loaded.graph.node if n.name == row["name"]), None)
+    producers = {o: n.name for n in loaded.graph.node for o in n.output}
+    for name in (node.input if node is not None else []):
+        if name in plan.activations and name not in tensors and (
+                name not in producers or producers[name] in plan.float_nodes):
+            tensors.append(name)
+    return tensors
+
+
 def candidates_for(loaded: LoadedModel, plan: Plan, row: dict, run_method: str,
                    methods: tuple[str, ...] = METHODS) -> list[Candidate]:
     if row["name"] in plan.float_nodes:
         return []
-    tensor = row["tensor"]
     out = []
-    q = plan.activations.get(tensor)
-    if q is not None and q.shared_from is None:
-        current = q.method or run_method
-        out += [Candidate(row["name"], f"method:{m}", tensor) for m in methods if m != current]
-    if q is not None and q.bits == 8 and _int16_available(loaded):
-        out.append(Candidate(row["name"], INT16, tensor))
+    for tensor in owned_tensors(loaded, plan, row):
+        q = plan.activations.get(tensor)
+        if q is None:
+            continue
+        if q.shared_from is None:
+            current = q.method or run_method
+            out += [Candidate(row["name"], f"method:{m}", tensor) for m in methods if m != current]
+        if q.bits == 8 and _int16_available(loaded):
+            out.append(Candidate(row["name"], INT16, tensor))
     out.append(Candidate(row["name"], KEEP_FLOAT, None, layer_nodes(loaded, plan, row)))
     return out
 
@@ -171,6 +191,8 @@ def fallback_costs(builder: ModelBuilder, base: PlanOptions, layers: list[dict],
         entry = {"float": None, "int16": None}
         if row["name"] not in base_plan.float_nodes:
             for cand in candidates_for(builder.loaded, base_plan, row, builder.method, methods=()):
+                if cand.action == INT16 and cand.tensor != row["tensor"]:
+                    continue  # the table prices the layer's own output
                 flash, sram = counter(builder.plan(cand.apply(base)))
                 key = "float" if cand.action == KEEP_FLOAT else "int16"
                 entry[key] = {"flash": flash - base_flash, "sram": sram - base_sram}
@@ -180,11 +202,18 @@ def fallback_costs(builder: ModelBuilder, base: PlanOptions, layers: list[dict],
 
 # ---- measuring a candidate -------------------------------------------------------------------------
 
-class DropMeter:
-    """The drop (points) of any QDQ model against the float model, on fixed search samples.
+@dataclass
+class Predictions:
+    top1: np.ndarray      # predicted class per sample
+    margin: np.ndarray    # top-1 minus top-2 output value per sample (how close it is to flipping)
 
-    Float predictions are computed once; a candidate then costs one faithful int8 pass. The batches
-    are kept in memory when they fit `max_cached_bytes`, else re-read from the folder each time.
+
+class DropMeter:
+    """The drop (points) of a QDQ model against the float model on fixed search samples.
+
+    Float predictions are computed once. A full measurement is one faithful int8 pass over the search
+    samples (kept in memory when they fit `max_cached_bytes`, else re-read); a screening measurement
+    runs only a gathered subset of samples (see `screen`).
     """
 
     def __init__(self, reference: LoadedModel, data, batch_size: int, max_cached_bytes: int = 256 << 20):
@@ -192,47 +221,93 @@ class DropMeter:
         self.batch_size = batch_size
         self.data = data
         runner = Runner(reference.model, [self.output], batch_size=batch_size)
-        self.float_top1: list[np.ndarray] = []
-        self.labels: list[np.ndarray] | None = []
+        float_top1, labels = [], []
         self.cached: list | None = []
         cached_bytes = 0
         for batch in data.batches(batch_size):
             out = runner(batch.inputs)[self.output]
-            self.float_top1.append(np.argmax(out.reshape(out.shape[0], -1), axis=1))
-            if batch.labels is None:
-                self.labels = None
-            elif self.labels is not None:
-                self.labels.append(np.asarray(batch.labels))
+            float_top1.append(np.argmax(out.reshape(out.shape[0], -1), axis=1))
+            labels = None if batch.labels is None or labels is None else labels + [np.asarray(batch.labels)]
             if self.cached is not None:
                 cached_bytes += sum(v.nbytes for v in batch.inputs.values())
                 self.cached = self.cached + [batch.inputs] if cached_bytes <= max_cached_bytes else None
-        self.samples = int(sum(p.size for p in self.float_top1))
-        self.labelled = self.labels is not None and bool(self.labels)
-        flat = np.concatenate(self.float_top1) if self.float_top1 else np.zeros(0, int)
-        self.float_correct = int(np.sum(flat == np.concatenate(self.labels))) if self.labelled else 0
-        self.evaluations = 0
+        self.float_top1 = np.concatenate(float_top1) if float_top1 else np.zeros(0, np.int64)
+        self.samples = int(self.float_top1.size)
+        self.labelled = bool(labels)
+        # "good" = right (with labels) or the float model's class (without): the drop counts lost goods
+        self.truth = np.concatenate(labels) if self.labelled else self.float_top1
+        self.float_good = int(np.sum(self.float_top1 == self.truth))
+        self.full_passes = 0
+        self.screen_passes = 0
 
-    def _inputs(self):
+    def _batches(self):
         if self.cached is not None:
             return iter(self.cached)
         return (b.inputs for b in self.data.batches(self.batch_size))
 
-    def __call__(self, quantized: QuantizedModel) -> float:
+    def _run(self, quantized: QuantizedModel, batches) -> Predictions:
         name = quantized.dequantized.get(self.output, self.output)
         runner = Runner(quantized.model, [name], faithful=True, batch_size=self.batch_size)
-        correct = agree = 0
-        for i, inputs in enumerate(self._inputs()):
+        top1, margin = [], []
+        for inputs in batches:
             out = runner(inputs)[name]
-            top1 = np.argmax(out.reshape(out.shape[0], -1), axis=1)
-            agree += int(np.sum(top1 == self.float_top1[i]))
-            if self.labelled:
-                correct += int(np.sum(top1 == self.labels[i]))
-        self.evaluations += 1
+            flat = out.reshape(out.shape[0], -1)
+            top1.append(np.argmax(flat, axis=1))
+            ordered = np.sort(flat, axis=1)
+            margin.append(ordered[:, -1] - ordered[:, -2] if flat.shape[1] > 1 else np.abs(ordered[:, -1]))
+        return Predictions(np.concatenate(top1), np.concatenate(margin))
+
+    def measure(self, quantized: QuantizedModel) -> Predictions:
+        self.full_passes += 1
+        return self._run(quantized, self._batches())
+
+    def drop_pt(self, predictions: Predictions) -> float:
         if not self.samples:
             return 0.0
-        if self.labelled:
-            return 100.0 * (self.float_correct - correct) / self.samples
-        return 100.0 * (self.samples - agree) / self.samples
+        return 100.0 * (self.float_good - int(np.sum(predictions.top1 == self.truth))) / self.samples
+
+    def screen(self, current: Predictions, extra_samples: int) -> "Screen":
+        """The samples a one-layer change can flip first: those the int8 model gets wrong (against the
+        truth above) plus the `extra_samples` others with the smallest int8 margin."""
+        wrong = np.nonzero(current.top1 != self.truth)[0]
+        rest = np.nonzero(current.top1 == self.truth)[0]
+        closest = rest[np.argsort(current.margin[rest], kind="stable")[:extra_samples]]
+        chosen = np.sort(np.concatenate([wrong, closest]))
+        inputs = self._gather(chosen)
+        return Screen(chosen, inputs, current.top1[chosen] == self.truth[chosen])
+
+    def _gather(self, indices: np.ndarray) -> list[dict[str, np.ndarray]]:
+        wanted = set(int(i) for i in indices)
+        parts: dict[str, list[np.ndarray]] = {}
+        start = 0
+        for inputs in self._batches():
+            n = next(iter(inputs.values())).shape[0]
+            local = [i - start for i in range(start, start + n) if i in wanted]
+            if local:
+                for k, v in inputs.items():
+                    parts.setdefault(k, []).append(v[local])
+            start += n
+        if not parts:
+            return []
+        joined = {k: np.concatenate(v) for k, v in parts.items()}
+        total = next(iter(joined.values())).shape[0]
+        return [{k: v[i:i + self.batch_size] for k, v in joined.items()} for i in range(0, total, self.batch_size)]
+
+    def estimate_drop_pt(self, quantized: QuantizedModel, screen: "Screen", current_drop_pt: float) -> float:
+        """The drop if only screened samples can change (the others are assumed to keep their class)."""
+        if not screen.indices.size:
+            return current_drop_pt
+        self.screen_passes += 1
+        got = self._run(quantized, iter(screen.inputs))
+        gained = int(np.sum(got.top1 == self.truth[screen.indices])) - int(np.sum(screen.good))
+        return current_drop_pt - 100.0 * gained / self.samples
+
+
+@dataclass
+class Screen:
+    indices: np.ndarray
+    inputs: list
+    good: np.ndarray
 
 
 # ---- the greedy search -----------------------------------------------------------------------------
@@ -245,23 +320,31 @@ class RepairResult:
     drop_after_pt: float = 0.0
     reached: bool = False
     reason: str = ""
-    candidates_evaluated: int = 0
-    refused: list[dict] = field(default_factory=list)   # candidates that helped but broke a limit
+    candidates_screened: int = 0
+    candidates_verified: int = 0
+    screen_samples: int = 0
+    refused: list[dict] = field(default_factory=list)   # the best step refused for breaking a limit
 
 
 def _over(value: int, limit: int | None) -> int:
     return 0 if limit is None else max(0, value - limit)
 
 
-def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[dict],
-                  measure_drop: Callable[[QuantizedModel], float], counter: ByteCounter, target_drop_pt: float,
-                  flash_limit_bytes: int | None, sram_limit_bytes: int | None,
-                  layers_tried: int = DEFAULT_LAYERS_TRIED, max_steps: int = DEFAULT_MAX_STEPS,
+def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[dict], meter: DropMeter,
+                  counter: ByteCounter, target_drop_pt: float, flash_limit_bytes: int | None,
+                  sram_limit_bytes: int | None, layers_tried: int = DEFAULT_LAYERS_TRIED,
+                  max_steps: int = DEFAULT_MAX_STEPS, screen_extra_samples: int = DEFAULT_SCREEN_EXTRA,
+                  verified_per_step: int = DEFAULT_VERIFIED_PER_STEP,
                   progress: Callable[[str], None] | None = None) -> RepairResult:
-    """Greedy search described in the module docstring; `ranked_rows` are layer rows, worst first."""
+    """Greedy search described in the module docstring; `ranked_rows` are layer rows, worst first.
+
+    Each step screens every candidate on the at-risk samples (DropMeter.screen), then measures the
+    best-scoring few on all search samples and accepts the best of those; the log holds the full
+    measurements only."""
     current = base
     plan, quantized = builder.build(current)
-    drop = measure_drop(quantized)
+    predictions = meter.measure(quantized)
+    drop = meter.drop_pt(predictions)
     flash, sram = counter(plan)
     result = RepairResult(options=current, drop_before_pt=drop, drop_after_pt=drop)
     if drop <= target_drop_pt:
@@ -271,38 +354,50 @@ def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[di
     rows = ranked_rows[:layers_tried]
     refused_best: dict | None = None
     while len(result.steps) < max_steps:
-        best = None
-        refused_best = None
+        screen = meter.screen(predictions, screen_extra_samples)
+        result.screen_samples = max(result.screen_samples, int(screen.indices.size))
+        screened, refused_best = [], None
         for row in rows:
             for cand in candidates_for(builder.loaded, plan, row, builder.method):
                 options = cand.apply(current)
                 cand_plan, cand_q = builder.build(options)
-                cand_drop = measure_drop(cand_q)
-                result.candidates_evaluated += 1
-                cand_flash, cand_sram = counter(cand_plan)
-                benefit = drop - cand_drop
+                estimate = meter.estimate_drop_pt(cand_q, screen, drop)
+                result.candidates_screened += 1
                 if progress is not None:
-                    progress(f"{cand.layer} {cand.describe()}: {cand_drop:.2f} pt")
+                    progress(f"{cand.layer} {cand.describe()}: about {estimate:.2f} pt")
+                benefit = drop - estimate
                 if benefit <= BENEFIT_EPSILON_PT:
                     continue
-                flash_cost, sram_cost = cand_flash - flash, cand_sram - sram
+                cand_flash, cand_sram = counter(cand_plan)
                 # "Breaking" a limit: ending over it, and more over it than before the step.
                 breaks = []
                 if _over(cand_flash, flash_limit_bytes) > _over(flash, flash_limit_bytes):
                     breaks.append(("flash", cand_flash, flash_limit_bytes))
                 if _over(cand_sram, sram_limit_bytes) > _over(sram, sram_limit_bytes):
                     breaks.append(("SRAM", cand_sram, sram_limit_bytes))
-                info = {"candidate": cand, "options": options, "plan": cand_plan, "drop": cand_drop,
-                        "flash": cand_flash, "sram": cand_sram, "flash_cost": flash_cost, "sram_cost": sram_cost,
-                        "benefit": benefit, "breaks": breaks}
+                info = {"candidate": cand, "options": options, "plan": cand_plan, "quantized": cand_q,
+                        "drop": estimate, "flash": cand_flash, "sram": cand_sram,
+                        "flash_cost": cand_flash - flash, "sram_cost": cand_sram - sram, "breaks": breaks}
                 if breaks:
-                    if refused_best is None or benefit > refused_best["benefit"]:
+                    if refused_best is None or estimate < refused_best["drop"]:
                         refused_best = info
                     continue
-                cost = max(0, flash_cost) + max(0, sram_cost)
-                score = (benefit / max(cost, 1), benefit)
-                if best is None or score > best["score"]:
-                    best = {**info, "score": score}
+                cost = max(0, info["flash_cost"]) + max(0, info["sram_cost"])
+                info["score"] = (benefit / max(cost, 1), benefit)
+                screened.append(info)
+        screened.sort(key=lambda info: info["score"], reverse=True)
+        best = None
+        for info in screened[:verified_per_step]:
+            full = meter.measure(info["quantized"])
+            result.candidates_verified += 1
+            true_drop = meter.drop_pt(full)
+            benefit = drop - true_drop
+            if benefit <= BENEFIT_EPSILON_PT:
+                continue
+            cost = max(0, info["flash_cost"]) + max(0, info["sram_cost"])
+            score = (benefit / max(cost, 1), benefit)
+            if best is None or score > best["score"]:
+                best = {**info, "drop": true_drop, "predictions": full, "score": score}
         if best is None:
             result.reason = _no_step_reason(drop, target_drop_pt, len(rows), refused_best)
             break
@@ -312,7 +407,7 @@ def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[di
             "drop_before_pt": round(drop, 4), "drop_after_pt": round(best["drop"], 4),
             "flash_cost_bytes": int(best["flash_cost"]), "sram_cost_bytes": int(best["sram_cost"]),
             "flash_total_bytes": int(best["flash"]), "sram_peak_bytes": int(best["sram"])})
-        current, plan, drop = best["options"], best["plan"], best["drop"]
+        current, plan, drop, predictions = best["options"], best["plan"], best["drop"], best["predictions"]
         flash, sram = best["flash"], best["sram"]
         if drop <= target_drop_pt:
             result.reached = True
@@ -331,7 +426,7 @@ def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[di
 
 def _refused_entry(info: dict) -> dict:
     cand = info["candidate"]
-    return {"layer": cand.layer, "action": cand.action, "drop_after_pt": round(info["drop"], 4),
+    return {"layer": cand.layer, "action": cand.action, "estimated_drop_after_pt": round(info["drop"], 4),
             "flash_total_bytes": int(info["flash"]), "sram_peak_bytes": int(info["sram"]),
             "breaks": [{"memory": what, "bytes": int(used), "limit_bytes": int(limit)}
                        for what, used, limit in info["breaks"]]}
@@ -346,6 +441,6 @@ def _no_step_reason(drop: float, target: float, layers: int, refused: dict | Non
         cand = refused["candidate"]
         over = "; ".join(f"{what} {format_size(used)} > limit {format_size(limit)}"
                          for what, used, limit in refused["breaks"])
-        text += (f"; the best refused step, {cand.layer} {cand.describe()} (drop {refused['drop']:.2f} pt), "
+        text += (f"; the best refused step, {cand.layer} {cand.describe()} (drop about {refused['drop']:.2f} pt), "
                  f"would need {over}")
     return text

@@ -87,6 +87,7 @@ def summary_text(report: dict, extra_sections: list[str] | None = None) -> str:
     if worst:
         lines += ["", "Lowest-SQNR layers (int8 model vs float, accumulated):",
                   tabulate(_layer_table(worst), headers=_LAYER_HEADERS, tablefmt="simple")]
+    lines += analysis_text(report)
     for section in extra_sections or []:
         lines += ["", section]
     lines.append("")
@@ -130,7 +131,182 @@ def markdown(report: dict, extra_sections: list[str] | None = None) -> str:
                         tablefmt="github"))
     out += ["", "## Layers (int8 model vs float model, accumulated error, network order)", "",
             tabulate(_layer_table(report.get("layers", [])), headers=_LAYER_HEADERS, tablefmt="github")]
+    out += analysis_markdown(report)
     for section in extra_sections or []:
         out += ["", section]
     out += ["", "## Caution", "", report["caution"], ""]
     return "\n".join(out)
+
+
+# ---- where the accuracy goes, repair, equalization (qfit.sensitivity, qfit.repair, qfit.equalize) ----
+
+RANKED_LAYERS_SHOWN = 8
+
+
+def _num(value, digits: int = 2, signed: bool = False) -> str:
+    if value is None:
+        return "-"
+    return f"{value:+.{digits}f}" if signed else f"{value:.{digits}f}"
+
+
+def _delta_bytes(value) -> str:
+    if value is None:
+        return "-"
+    if value == 0:
+        return "0 B"
+    return ("+" if value > 0 else "-") + format_size(abs(int(value)))
+
+
+def _cost(row: dict, which: str) -> str:
+    cost = (row.get("fallback_cost_bytes") or {}).get(which)
+    if not cost:
+        return "-"
+    return f"{_delta_bytes(cost['flash'])} / {_delta_bytes(cost['sram'])}"
+
+
+def ranking_table(report: dict, count: int | None = RANKED_LAYERS_SHOWN, compact: bool = False
+                  ) -> tuple[list[str], list[list[str]]]:
+    """Headers and rows of the sensitivity ranking, worst layer first (`compact`: for a terminal)."""
+    section = report.get("sensitivity", {})
+    isolated_key, float_key = section.get("isolated_key"), section.get("float_key")
+    rows = [r for r in report.get("layers", []) if r.get("sensitivity_rank") is not None]
+    rows.sort(key=lambda r: r["sensitivity_rank"])
+    if count is not None:
+        rows = rows[:count]
+    points = isolated_key is not None
+    unit = "agree pt" if isolated_key == "sensitivity_agreement_pt" else "pt"
+    headers = ["#", "layer", "op", "now"]
+    if points:
+        headers += [f"alone {unit}" if compact else f"drop, only it int8 ({unit})",
+                    f"if float {unit}" if compact else f"drop saved, only it float ({unit})"]
+    else:
+        headers += ["if float out dB" if compact else "output SQNR, only it float (dB)"]
+    headers += ["alone out dB" if compact else "output SQNR, only it int8 (dB)"]
+    if not compact:
+        headers += ["its tensor SQNR, only it int8 (dB)"]
+    headers += ["now dB" if compact else "SQNR in the written model (dB)", "int8 weight B",
+                "float +flash/+SRAM" if compact else "keep float: flash / SRAM",
+                "int16 +flash/+SRAM" if compact else "int16 output: flash / SRAM"]
+    table = []
+    for r in rows:
+        cells = [str(r["sensitivity_rank"]), r["name"], r["op_type"], r.get("precision", "")]
+        if points:
+            cells += [_num(r.get(isolated_key), signed=True), _num(r.get(float_key), signed=True)]
+        else:
+            cells.append(_num(r.get(float_key), 1))
+        cells.append(_num(r.get("isolated_output_sqnr_db"), 1))
+        if not compact:
+            cells.append(_num(r.get("sqnr_isolated_db"), 1))
+        cells += [_num(r.get("sqnr_db"), 1), str(r.get("weight_bytes_int8", 0)), _cost(r, "float"), _cost(r, "int16")]
+        table.append(cells)
+    return headers, table
+
+
+def _ranking_intro(report: dict) -> str | None:
+    section = report.get("sensitivity")
+    if not section:
+        return None
+    if not section.get("samples_used"):
+        return section.get("skipped", "no isolated sweep")
+    return (f"\"alone\": only this layer int8, all others float; \"if float\": only this layer float, all "
+            f"others int8. Measured on {section['samples_used']} of {section['samples_available']} evaluation "
+            f"samples (cap {section['sample_cap']}); byte costs against the all-int8 plan.")
+
+
+_ACTION_TEXT = {"keep_float": "keep float", "int16_activations": "int16 activations"}
+
+
+def _action_text(step: dict) -> str:
+    action = step["action"]
+    if action.startswith("method:"):
+        text = f"calibrate with {action.split(':', 1)[1]}"
+    else:
+        text = _ACTION_TEXT.get(action, action)
+    if step.get("tensor") and action != "keep_float":
+        text += f" ({step['tensor']})"
+    return text
+
+
+def repair_table(report: dict) -> tuple[list[str], list[list[str]]]:
+    steps = report.get("repair", {}).get("steps", [])
+    headers = ["step", "layer", "change", "drop before pt", "drop after pt", "flash cost", "SRAM cost"]
+    return headers, [[str(i), s["layer"], _action_text(s), _num(s["drop_before_pt"], signed=True),
+                      _num(s["drop_after_pt"], signed=True), _delta_bytes(s["flash_cost_bytes"]),
+                      _delta_bytes(s["sram_cost_bytes"])] for i, s in enumerate(steps, 1)]
+
+
+def _repair_summary(report: dict) -> list[str]:
+    section = report.get("repair")
+    if not section:
+        return []
+    if section.get("target_drop_pt") is None:
+        return [section["reason"]]
+    lines = [f"Target drop {section['target_drop_pt']:.2f} pt; int8 drop before repair "
+             f"{_num(section.get('drop_before_pt'), signed=True)} pt, written model "
+             f"{_num(section.get('final_drop_pt'), signed=True)} pt: "
+             + ("reached" if section.get("reached") else "NOT reached") + "."]
+    lines.append(f"Why: {section['reason']}.")
+    search = section.get("search")
+    if search:
+        lines.append(f"Search: {search['candidates_screened']} candidates screened on up to "
+                     f"{search['screen_samples']} at-risk samples, {search['candidates_verified']} measured on "
+                     f"{search['samples']} samples, {search['layers_tried']} most sensitive layers tried.")
+    return lines
+
+
+def _improvement_lines(report: dict) -> list[str]:
+    lines = []
+    for key, title in (("equalization", "Cross-layer equalization (Nagel et al. 2019)"),
+                       ("bias_correction", "Bias correction (Nagel et al. 2019)")):
+        section = report.get(key) or {}
+        if not section.get("enabled"):
+            continue
+        before, after = section.get("before", {}), section.get("after", {})
+        what = (f"{section.get('pairs_equalized', 0)} layer pairs rescaled, "
+                f"{section.get('absorbed_channels', 0)} channel offsets absorbed" if key == "equalization"
+                else f"{section.get('layers_corrected', 0)} layers corrected")
+        lines.append(f"{title}: {what}; drop {_num(before.get('drop_pt'), signed=True)} -> "
+                     f"{_num(after.get('drop_pt'), signed=True)} pt, output SQNR "
+                     f"{_num(before.get('output_sqnr_db'), 1)} -> {_num(after.get('output_sqnr_db'), 1)} dB")
+    return lines
+
+
+def analysis_text(report: dict) -> list[str]:
+    """Terminal lines: improvements, the ranking (worst layers), the repair log."""
+    lines = []
+    improvements = _improvement_lines(report)
+    if improvements:
+        lines += [""] + improvements
+    headers, rows = ranking_table(report, compact=True)
+    intro = _ranking_intro(report)
+    if rows:
+        lines += ["", "Where the accuracy goes (worst first):", intro or "",
+                  tabulate(rows, headers=headers, tablefmt="simple", disable_numparse=True)]
+    elif intro:
+        lines += ["", "Where the accuracy goes: " + intro]
+    if report.get("repair"):
+        lines += ["", "Repair:"] + _repair_summary(report)
+        headers, rows = repair_table(report)
+        if rows:
+            lines.append(tabulate(rows, headers=headers, tablefmt="simple", disable_numparse=True))
+    return lines
+
+
+def analysis_markdown(report: dict) -> list[str]:
+    out = []
+    improvements = _improvement_lines(report)
+    if improvements:
+        out += ["", "## Equalization and bias correction", ""] + [f"- {line}" for line in improvements]
+    headers, rows = ranking_table(report, count=None)
+    intro = _ranking_intro(report)
+    out += ["", "## Where the accuracy goes", ""]
+    if intro:
+        out += [intro, ""]
+    if rows:
+        out.append(tabulate(rows, headers=headers, tablefmt="github", disable_numparse=True))
+    if report.get("repair"):
+        out += ["", "## Repair", ""] + _repair_summary(report)
+        headers, rows = repair_table(report)
+        if rows:
+            out += ["", tabulate(rows, headers=headers, tablefmt="github", disable_numparse=True)]
+    return out

@@ -1,0 +1,202 @@
+"""Per-layer sensitivity and end metrics, checked against definitions and independent computations."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import onnxruntime as ort
+import pytest
+from onnx import TensorProto, helper, numpy_helper
+
+from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
+from qfit import pipeline, sensitivity
+from qfit.compare import ErrorSums
+from qfit.data import Batch
+from qfit.load import prepare_model
+from qfit.observe import TensorStats
+from qfit.plan import PlanOptions, make_plan
+from qfit.quantize import build_qdq, calibrated_ranges
+from qfit.run import Runner
+
+
+@pytest.fixture(scope="module")
+def folders(tmp_path_factory):
+    return write_folders(tmp_path_factory.mktemp("digits"))
+
+
+def _check(model_path, folders, out, **extra):
+    calib, evaluation = folders
+    options = pipeline.CheckOptions(model_path=str(model_path), calib_dir=calib, eval_dir=evaluation, out_dir=str(out),
+                                    flash_limit_bytes=1 << 20, sram_limit_bytes=256 << 10,
+                                    input_shapes=INPUT_SHAPES, progress=False, **extra)
+    return pipeline.check(options)
+
+
+# ---- exact binomial interval, written independently of qfit.compare -----------------------------
+
+def _binomial_tail_at_most(k: int, n: int, p: float) -> float:
+    return sum(math.comb(n, i) * p ** i * (1 - p) ** (n - i) for i in range(k + 1))
+
+
+def _clopper_pearson(x: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Clopper & Pearson (1934): lower = p with P(X >= x) = a/2, upper = p with P(X <= x) = a/2."""
+    alpha = 1 - confidence
+
+    def bisect(f, target):  # f increasing in p
+        lo, hi = 0.0, 1.0
+        for _ in range(100):
+            mid = (lo + hi) / 2
+            lo, hi = (mid, hi) if f(mid) < target else (lo, mid)
+        return (lo + hi) / 2
+
+    lower = 0.0 if x == 0 else bisect(lambda p: 1 - _binomial_tail_at_most(x - 1, n, p), alpha / 2)
+    upper = 1.0 if x == n else bisect(lambda p: -_binomial_tail_at_most(x, n, p), -alpha / 2)
+    return lower, upper
+
+
+def test_independent_clopper_pearson_matches_the_published_table_value():
+    # From memory (the standard textbook example, e.g. Agresti & Coull 1998 tables): 3 successes
+    # in 10 trials give the exact 95 % interval 0.0667 .. 0.6525.
+    lower, upper = _clopper_pearson(3, 10)
+    assert lower == pytest.approx(0.0667, abs=1e-4) and upper == pytest.approx(0.6525, abs=1e-4)
+
+
+def _mcnemar_drop(predictions: dict) -> tuple[float, list[float], int, int]:
+    """Drop and 95 % interval from paired predictions: b = float right & int8 wrong, c = the reverse;
+    b ~ Binomial(b + c, p) given the discordant pairs (McNemar 1947), drop = (b - c) / n."""
+    f, q, y = (np.asarray(predictions[k]) for k in ("float", "int8", "labels"))
+    n = y.size
+    b = int(np.sum((f == y) & (q != y)))
+    c = int(np.sum((f != y) & (q == y)))
+    m = b + c
+    lower, upper = _clopper_pearson(b, m) if m else (0.5, 0.5)
+    return 100 * (b - c) / n, [100 * m * (2 * lower - 1) / n, 100 * m * (2 * upper - 1) / n], b, c
+
+
+@pytest.mark.parametrize("damaged", [False, True], ids=["trained", "outlier_per_tensor"])
+def test_digits_drop_and_interval_agree_with_an_independent_mcnemar_computation(folders, tmp_path, damaged):
+    # Source of the labels: scikit-learn's bundled UCI digits set, split as the model was trained.
+    _, _, _, y_test = digits_split()
+    if damaged:  # a model with a real drop, so that the interval is not the degenerate [0, 0]
+        result = _check(with_weight_outlier(tmp_path / "outlier.onnx"), folders, tmp_path / "out",
+                        per_channel=False, isolated_samples=0)
+    else:
+        result = _check(MODEL, folders, tmp_path / "out", isolated_samples=0)
+    accuracy = result.report["accuracy"]
+    predictions = result.predictions
+    # the evaluation folder holds the held-out set: same labels, as a multiset (file order differs)
+    assert np.array_equal(np.sort(predictions["labels"]), np.sort(y_test))
+    drop, interval, b, c = _mcnemar_drop(predictions)
+    assert accuracy["drop_pt"] == pytest.approx(drop, abs=1e-9)
+    assert accuracy["drop_ci95_pt"] == pytest.approx(interval, abs=1e-6)
+    assert accuracy["discordant"] == {"float_only_correct": b, "int8_only_correct": c}
+    if damaged:
+        # every discordant pair went one way here (c = 0), so the upper end is the drop itself
+        assert b + c > 0 and 0 < interval[0] < drop <= interval[1]
+    else:
+        # tests/models/README.md: 98.70 % held out in float; the issue's bar: int8 within 0.5 pt
+        assert accuracy["float"] == pytest.approx(100 * 533 / 540, abs=0.01)
+        assert drop <= 0.5
+
+
+@pytest.mark.parametrize("per_channel", [True, False], ids=["per_channel", "per_tensor"])
+def test_a_layer_given_one_large_weight_outlier_ranks_first(folders, tmp_path, per_channel):
+    # Common practice (Nagel et al., "A White Paper on Neural Network Quantization", 2021, sec. 3):
+    # one outlier stretches the symmetric weight range, so every other weight of that scale rounds
+    # to a few levels; the damaged layer must come first in "where the accuracy goes".
+    result = _check(with_weight_outlier(tmp_path / "outlier.onnx"), folders, tmp_path / "out",
+                    per_channel=per_channel, isolated_samples=64)
+    section = result.report["sensitivity"]
+    assert section["ranking"][0] == HEAVY_LAYER
+    row = next(r for r in result.report["layers"] if r["name"] == HEAVY_LAYER)
+    assert row["sensitivity_rank"] == 1
+    others = [r["isolated_output_sqnr_db"] for r in result.report["layers"]
+              if r["name"] != HEAVY_LAYER and r["isolated_output_sqnr_db"] is not None]
+    assert row["isolated_output_sqnr_db"] < min(others)
+    assert section["samples_used"] == 64 and section["samples_available"] == 540
+
+
+def test_every_layer_row_carries_the_sensitivity_keys_and_the_sample_count_is_reported(folders, tmp_path):
+    result = _check(MODEL, folders, tmp_path / "out", isolated_samples=20)
+    section = result.report["sensitivity"]
+    assert section["samples_used"] == 20 and section["sample_cap"] == 20
+    assert section["runs_per_sample"] == 1 + 2 * section["layers_swept"]
+    for row in result.report["layers"]:
+        for key in ("sqnr_db", "sqnr_isolated_db", "sensitivity_pt", "float_recovery_pt", "fallback_cost_bytes"):
+            assert key in row
+        assert row["sqnr_isolated_db"] is not None
+    ranks = sorted(r["sensitivity_rank"] for r in result.report["layers"])
+    assert ranks == list(range(1, len(ranks) + 1))
+
+
+# ---- the switch model ---------------------------------------------------------------------------
+
+def _conv_chain(seed=0):
+    rng = np.random.default_rng(seed)
+    inits = [numpy_helper.from_array(rng.normal(0, 0.3, (8, 3, 3, 3)).astype(np.float32), "w1"),
+             numpy_helper.from_array(rng.normal(0, 0.1, 8).astype(np.float32), "b1"),
+             numpy_helper.from_array(rng.normal(0, 0.2, (4, 8, 3, 3)).astype(np.float32), "w2")]
+    nodes = [helper.make_node("Conv", ["x", "w1", "b1"], ["c1"], pads=[1, 1, 1, 1], name="conv1"),
+             helper.make_node("Relu", ["c1"], ["r1"], name="relu1"),
+             helper.make_node("Conv", ["r1", "w2"], ["y"], pads=[1, 1, 1, 1], name="conv2")]
+    graph = helper.make_graph(nodes, "chain", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 3, 8, 8])],
+                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 4, 8, 8])], inits)
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)], ir_version=9)
+
+
+def _quantized(model, samples):
+    loaded = prepare_model(model)
+    plan = make_plan(loaded, PlanOptions())
+    runner = Runner(loaded.model, plan.calibrated_tensors())
+    stats = {t: TensorStats(t) for t in plan.calibrated_tensors()}
+    for x in samples:
+        values = runner({"x": x})
+        for t in stats:
+            stats[t].update(values[t])
+    return loaded, plan, build_qdq(loaded, plan, calibrated_ranges(plan, stats, "minmax", 99.99))
+
+
+class _Samples:
+    def __init__(self, xs):
+        self.xs = xs
+
+    def batches(self, size):
+        for i in range(0, len(self.xs), size):
+            chunk = np.concatenate(self.xs[i:i + size])
+            yield Batch({"x": chunk}, None, [str(j) for j in range(i, i + len(chunk))])
+
+
+def test_switch_model_with_every_switch_on_is_the_int8_model_and_off_the_float_model():
+    rng = np.random.default_rng(1)
+    xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(6)]
+    loaded, plan, quantized = _quantized(_conv_chain(), xs)
+    layers = pipeline.compared_layers(loaded, plan)
+    switch = sensitivity.build_switch_model(loaded, plan, quantized, layers)
+    runner = sensitivity.SwitchRunner(switch, ["y"], batch_size=1)
+    so = ort.SessionOptions()
+    so.add_session_config_entry("session.disable_quant_qdq", "1")
+    int8 = ort.InferenceSession(quantized.model.SerializeToString(), so, providers=["CPUExecutionProvider"])
+    float_session = ort.InferenceSession(loaded.model.SerializeToString(), providers=["CPUExecutionProvider"])
+    for x in xs:
+        assert np.array_equal(runner({"x": x}, set(switch.switches))["y"], int8.run(["y"], {"x": x})[0])
+        np.testing.assert_allclose(runner({"x": x}, set())["y"], float_session.run(["y"], {"x": x})[0],
+                                   rtol=1e-5, atol=1e-5)
+    # conv1 owns the input quantizer, its weights and its (ReLU-fused) output quantizer
+    assert len(switch.layer_switches["conv1"]) == 3 and len(switch.layer_switches["conv2"]) == 2
+
+
+def test_isolated_error_equals_accumulated_error_for_the_first_layer():
+    # Definition: the first layer reads only the graph input, so "only this layer quantized" and
+    # "everything quantized" give the same tensor at its output.
+    rng = np.random.default_rng(2)
+    xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(8)]
+    loaded, plan, quantized = _quantized(_conv_chain(), xs)
+    layers = pipeline.compared_layers(loaded, plan)
+    swept = sensitivity.sweep(loaded, plan, quantized, layers, _Samples(xs), 4, "score", sample_cap=8)
+    accumulated = ErrorSums()
+    float_runner = Runner(loaded.model, ["r1"])
+    int8_runner = Runner(quantized.model, [quantized.dequantized["r1"]], faithful=True)
+    for x in xs:
+        accumulated.update(float_runner({"x": x})["r1"], int8_runner({"x": x})[quantized.dequantized["r1"]])
+    assert swept["rows"]["conv1"]["sqnr_isolated_db"] == pytest.approx(accumulated.sqnr_db(), abs=0.01)
+    assert swept["samples_used"] == 8 and swept["metric"] == "output_sqnr_db"
