@@ -15,7 +15,8 @@ Order search (memory-aware scheduling; Liberis & Lane 2019, "Neural networks on 
 saving memory at inference via operator reordering"; Ahn et al., MLSys 2020, "Ordering Chaos"):
 the buffers live after a set S of scheduled nodes depend on S only, so the best peak is a
 bottleneck shortest path over the lattice of scheduled sets. We run a best-first (Dijkstra) search
-on it — exact when it finishes — bounded by the best of a few greedy orders, under a time limit. The
+on it — exact when it finishes — bounded by the best of two greedy orders and a beam search, all
+under one time limit. The
 default order is kept unless another order is strictly better, so chains come out unchanged.
 """
 from __future__ import annotations
@@ -197,6 +198,11 @@ def search_order(problem: MemoryProblem, time_limit_s: float = 2.0, max_states: 
         peak = peak_of(problem, candidate)
         if peak < best_peak:
             best_order, best_peak = candidate, peak
+    candidate = _beam(search, BEAM_WIDTH, deadline)
+    if candidate is not None:
+        peak = peak_of(problem, candidate)
+        if peak < best_peak:
+            best_order, best_peak = candidate, peak
     # Best-first search on (peak so far); prune anything not strictly better than the incumbent.
     start_ready = tuple(sorted(search.sources))
     best_at: dict[int, int] = {0: 0}
@@ -240,6 +246,31 @@ def search_order(problem: MemoryProblem, time_limit_s: float = 2.0, max_states: 
                        best_order != default, explored)
 
 
+BEAM_WIDTH = 48
+ARENA_IMPROVE_ROUNDS = 16
+
+
+def _beam(search: _Search, width: int, deadline: float) -> list[int] | None:
+    """Beam search level by level (one more node per level), keeping the `width` partial orders
+    with the lowest (peak so far, live bytes after); None if the deadline passes first."""
+    beam = [(0, search.initial_live, 0, tuple(sorted(search.sources)), ())]
+    for _level in range(search.n):
+        if time.monotonic() > deadline:
+            return None
+        seen: dict[int, tuple] = {}
+        for peak, live, done, ready, order in beam:
+            for v in ready:
+                during, after = search.step(done, live, v)
+                nxt = done | (1 << v)
+                key = (max(peak, during), after)
+                if nxt not in seen or key < seen[nxt][:2]:
+                    seen[nxt] = (key[0], key[1], nxt, ready, order + (v,), done, v)
+        ranked = sorted(seen.values(), key=lambda e: (e[0], e[1], e[4]))[:width]
+        beam = [(peak, after, nxt, search.ready_after(ready, done, v), order)
+                for peak, after, nxt, ready, order, done, v in ranked]
+    return list(beam[0][4]) if beam else None
+
+
 # ---- arena --------------------------------------------------------------------------------------
 
 @dataclass
@@ -259,19 +290,58 @@ def plan_arena(items: list[tuple[str, int, int, int]], alignment: int = 4) -> tu
     """Offsets for (name, size_bytes, first_step, last_step) so that buffers live at the same step
     never overlap. Greedy by size (Pisarchyk & Lee 2020, "Efficient Memory Management for Deep
     Neural Net Inference"): largest first, each into the smallest gap between the already placed
-    buffers it overlaps in time (else on top). Best fit and first fit are both tried; the smaller
-    arena wins. Returns (placements in input order, arena bytes)."""
+    buffers it overlaps in time (else on top); also first fit, and the paper's greedy by breadth
+    (buffers of the fullest steps first). The smallest arena wins, then buffers that end at its top
+    are moved to the front of the placement order while that shrinks it. Returns (placements in input
+    order, arena bytes)."""
     best = None
-    for best_fit in (True, False):
-        placements = _greedy_by_size(items, alignment, best_fit)
+    for order, best_fit in ((_by_size(items), True), (_by_size(items), False), (_by_breadth(items, alignment), True)):
+        placements = _place(items, order, alignment, best_fit)
         arena = max((p.offset + p.size_bytes for p in placements), default=0)
         if best is None or arena < best[1]:
-            best = (placements, arena)
-    return best
+            best = (placements, arena, order, best_fit)
+    placements, arena, order, best_fit = best
+    # Local improvement: a buffer that ends at the top of the arena is placed first instead, and
+    # the change is kept when the arena shrinks (each top buffer is tried once).
+    tried: set[int] = set()
+    for _ in range(ARENA_IMPROVE_ROUNDS):
+        top = [i for i in reversed(order) if placements[i].offset + placements[i].size_bytes == arena
+               and i not in tried]
+        if not top or arena == 0:
+            break
+        tried.add(top[0])
+        candidate = [top[0]] + [i for i in order if i != top[0]]
+        new = _place(items, candidate, alignment, best_fit)
+        new_arena = max((p.offset + p.size_bytes for p in new), default=0)
+        if new_arena < arena:
+            placements, arena, order = new, new_arena, candidate
+            tried.clear()
+    return placements, arena
 
 
-def _greedy_by_size(items, alignment: int, best_fit: bool) -> list[Placement]:
-    order = sorted(range(len(items)), key=lambda i: (-items[i][1], items[i][2], items[i][0]))
+def _by_size(items) -> list[int]:
+    return sorted(range(len(items)), key=lambda i: (-items[i][1], items[i][2], items[i][0]))
+
+
+def _by_breadth(items, alignment: int) -> list[int]:
+    """Greedy by breadth (same paper): steps with the most live bytes first, and within a step its
+    buffers largest first — the buffers that meet at the peak get packed together first."""
+    steps = max((it[3] for it in items), default=-1) + 1
+    breadth = [0] * steps
+    for _, size, first, last in items:
+        for s in range(first, last + 1):
+            breadth[s] += align_up(size, alignment)
+    order, taken = [], set()
+    for s in sorted(range(steps), key=lambda s: (-breadth[s], s)):
+        live = [i for i, it in enumerate(items) if it[2] <= s <= it[3] and i not in taken]
+        for i in sorted(live, key=lambda i: (-items[i][1], items[i][2], items[i][0])):
+            order.append(i)
+            taken.add(i)
+    order.extend(i for i in _by_size(items) if i not in taken)
+    return order
+
+
+def _place(items, order: list[int], alignment: int, best_fit: bool) -> list[Placement]:
     placed: list[Placement] = []
     result: dict[int, Placement] = {}
     for i in order:
