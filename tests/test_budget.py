@@ -391,3 +391,22 @@ def test_budget_command_reads_a_qdq_model(tmp_path, capsys):
     data = json.loads(out.read_text())
     assert data["model_kind"] == "qdq" and data["sram"]["peak_bytes"] == 576
     assert "QDQ model" in capsys.readouterr().out
+
+
+DEMO_MODEL = os.path.join(os.path.dirname(__file__), "..", "calib_demo", "model.onnx")
+
+
+@pytest.mark.skipif(not os.path.exists(DEMO_MODEL), reason="calib_demo/model.onnx not built")
+def test_demo_below_its_peak_exits_1_and_names_a_way_to_fit(tmp_path, capsys):
+    # Acceptance (issue 3): the flash map, the peak with its live tensors and the arena are printed;
+    # with --sram below the peak the command exits 1 and prints at least one concrete way to fit.
+    out = tmp_path / "demo.json"
+    assert _cli(["budget", DEMO_MODEL, "--flash", "1MiB", "--sram", "4MiB", "--json", str(out)]) == 0
+    data = json.loads(out.read_text())
+    peak = data["sram"]["peak_bytes"]
+    assert_no_overlap(data["arena"]["plan"])
+    capsys.readouterr()
+    assert _cli(["budget", DEMO_MODEL, "--flash", "1MiB", "--sram", str(peak - 1)]) == 1
+    printed = capsys.readouterr().out
+    assert "Flash" in printed and "tensors live at the peak" in printed and "arena" in printed
+    assert "fits: arena" in printed or "tile the first" in printed
