@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 import onnx
-from onnx import TensorProto, helper, numpy_helper
+from onnx import TensorProto, numpy_helper
 
 from qfit import ops
 from qfit.errors import QfitError
