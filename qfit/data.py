@@ -41,6 +41,7 @@ _WIDE_PIXEL_MODES = ("I", "F")
 
 _NPY_MAGIC = b"\x93NUMPY"
 _PICKLE_PROTOCOL_BYTE = 0x80  # first byte of a pickle stream, protocol 2 and newer
+MAX_CLASS_INDEX = 2 ** 31 - 1
 _NUMERIC_KINDS = "biuf"  # bool, signed, unsigned, float; complex would lose its imaginary part
 # Decoders of foreign formats (Pillow plugins, numpy's header parser built on ast.literal_eval, zlib)
 # raise many exception types on damaged bytes; at those boundaries any Exception means "unreadable".
@@ -658,6 +659,8 @@ def parse_labels_csv(text: str, where: str, data_files: set[str], folder: str = 
         labels = {}
         for line, rel, label_text in entries:
             index = _parse_index(label_text)
+            if index > MAX_CLASS_INDEX:  # labels are stored as int64; no classifier has this many classes
+                raise QfitError(f"{where}: line {line}: class index {label_text[:40]} is too large")
             if index < 0 or (limit is not None and index >= limit):
                 raise QfitError(f"{where}: line {line}: unknown class {label_text} (expected 0..{limit - 1})"
                                 if limit is not None else f"{where}: line {line}: negative class index {label_text}")
@@ -686,6 +689,8 @@ def _csv_rows(text: str):
 def _parse_index(text: str) -> int | None:
     # Only plain decimal digits: int() would also take "٣" (Arabic-Indic three) or "1_000".
     if text.isascii() and (text.isdigit() or (text.startswith("-") and text[1:].isdigit())):
+        if len(text.lstrip("-0")) > len(str(MAX_CLASS_INDEX)):
+            return MAX_CLASS_INDEX + 1 if not text.startswith("-") else -1  # int() refuses 4300+ digits
         return int(text)
     return None
 

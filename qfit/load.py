@@ -22,6 +22,7 @@ from qfit.errors import QfitError
 MIN_OPSET = 13
 TARGET_OPSET = 21  # first opset whose QuantizeLinear/DequantizeLinear accept int16
 
+MAX_DIM = 2 ** 31 - 1  # ONNX stores dims as int64; a larger one is a typo, not an MCU model
 _SHAPE = re.compile(r"^([^=]+)=([0-9]+(?:[x,][0-9]+)*)$")
 
 
@@ -63,7 +64,11 @@ def parse_input_shapes(specs: list[str] | None) -> dict[str, tuple[int, ...]]:
         match = _SHAPE.match(spec.strip())
         if not match:
             raise QfitError(f"--input-shape: cannot read '{spec}' (expected NAME=1x3x96x96)")
-        dims = tuple(int(d) for d in re.split("[x,]", match.group(2)))
+        texts = re.split("[x,]", match.group(2))
+        # length first: int() refuses strings of more than 4300 digits with its own error
+        if any(len(t.lstrip("0")) > len(str(MAX_DIM)) or int(t) > MAX_DIM for t in texts):
+            raise QfitError(f"--input-shape: '{spec[:80]}' has a dimension larger than {MAX_DIM}")
+        dims = tuple(int(t) for t in texts)
         if any(d <= 0 for d in dims):
             raise QfitError(f"--input-shape: '{spec}' has a dimension that is not positive")
         shapes[match.group(1)] = dims
@@ -98,8 +103,9 @@ def read_model_file(path: str) -> onnx.ModelProto:
 
 
 def _first_line(error: Exception) -> str:
-    text = str(error).strip().splitlines()
-    return text[0][:300] if text else type(error).__name__
+    """The error's text on one line (onnx's checker breaks its sentences across lines), capped."""
+    text = " ".join(part.strip() for part in str(error).strip().splitlines() if part.strip())
+    return text[:300] if text else type(error).__name__
 
 
 def _default_opset(model: onnx.ModelProto) -> int:
@@ -136,6 +142,52 @@ def _convert_opset(model: onnx.ModelProto, where: str, notes: list[str]) -> onnx
         return model
 
 
+def _type_name(elem_type: int) -> str:
+    try:
+        return TensorProto.DataType.Name(elem_type)
+    except ValueError:
+        return f"unknown element type {elem_type}"
+
+
+def _check_readable(model: onnx.ModelProto, where: str) -> None:
+    """What the checker leaves alone but later steps decode: every name must be UTF-8 text and every
+    stored tensor must convert to an array. Checked once here, so that a damaged file is refused with
+    a message instead of failing somewhere in the middle of the cleaning steps."""
+    graph = model.graph
+    # protobuf hands back a string field that is not valid UTF-8 as bytes (or raises, by version)
+    try:
+        named = _named_fields(model)
+    except UnicodeDecodeError:
+        raise QfitError(f"model: {where}: a name in the file is not valid UTF-8 text") from None
+    for what, texts in named:
+        if any(not isinstance(text, str) for text in texts):
+            raise QfitError(f"model: {where}: a name in {what} is not valid UTF-8 text")
+    tensors = [(f"initializer '{t.name}'", t) for t in graph.initializer]
+    tensors += [(f"node '{node.name or node.op_type}' attribute '{a.name}'", a.t) for node in graph.node
+                for a in node.attribute if a.type == onnx.AttributeProto.TENSOR]
+    for label, tensor in tensors:
+        try:
+            array = numpy_helper.to_array(tensor)
+        except Exception as e:  # onnx's decoder raises KeyError/ValueError/TypeError on damaged tensors
+            raise QfitError(f"model: {where}: {label} cannot be read as a tensor ({_first_line(e)})") from None
+        # NaN has no int8 value and poisons every range it touches (Inf can be a legitimate mask value)
+        if array.dtype.kind == "f" and np.isnan(array).any():
+            raise QfitError(f"model: {where}: {label} contains NaN")
+
+
+def _named_fields(model: onnx.ModelProto) -> list[tuple[str, list]]:
+    """(where, [its string fields]) for every name in the model's main graph."""
+    graph = model.graph
+    named = [("the model header", [model.producer_name, graph.name] + [imp.domain for imp in model.opset_import])]
+    named += [(f"node {i}", [node.name, node.op_type, node.domain, *node.input, *node.output,
+                             *(a.name for a in node.attribute)]) for i, node in enumerate(graph.node)]
+    named += [(f"{kind} {i}", [vi.name] + [d.dim_param for d in vi.type.tensor_type.shape.dim])
+              for kind, infos in (("input", graph.input), ("output", graph.output), ("value info", graph.value_info))
+              for i, vi in enumerate(infos)]
+    named += [(f"initializer {i}", [init.name]) for i, init in enumerate(graph.initializer)]
+    return named
+
+
 def _graph_inputs(model: onnx.ModelProto) -> list[onnx.ValueInfoProto]:
     inits = {i.name for i in model.graph.initializer}
     return [i for i in model.graph.input if i.name not in inits]
@@ -156,7 +208,7 @@ def _fix_input_shapes(model: onnx.ModelProto, overrides: dict[str, tuple[int, ..
         if not inp.type.HasField("tensor_type"):
             raise QfitError(f"model: {where}: input '{inp.name}' is not a tensor")
         if tt.elem_type != TensorProto.FLOAT:
-            raise QfitError(f"model: {where}: input '{inp.name}' is {TensorProto.DataType.Name(tt.elem_type)}; "
+            raise QfitError(f"model: {where}: input '{inp.name}' is {_type_name(tt.elem_type)}; "
                             "qfit quantizes float32-input models")
         dims = tt.shape.dim if tt.HasField("shape") else []
         if inp.name in overrides:
@@ -244,7 +296,16 @@ def _consumers(graph: onnx.GraphProto) -> dict[str, list[onnx.NodeProto]]:
     return users
 
 
-def _fold_batchnorm(graph: onnx.GraphProto) -> tuple[int, int]:
+def _check_folded(where: str, node: onnx.NodeProto, *arrays: np.ndarray) -> None:
+    for array in arrays:
+        with np.errstate(over="ignore", invalid="ignore"):
+            finite = np.isfinite(array.astype(np.float32)).all()
+        if not finite:
+            raise QfitError(f"model: {where}: folding BatchNormalization '{node.name}' gives values outside the "
+                            "float32 range (check its scale, mean and variance)")
+
+
+def _fold_batchnorm(graph: onnx.GraphProto, where: str = "<memory>") -> tuple[int, int]:
     """Fold BN into the preceding Conv/ConvTranspose/Gemm; turn a lone BN into Mul+Add."""
     inits = {i.name: i for i in graph.initializer}
     outputs = {o.name for o in graph.output}
@@ -260,8 +321,13 @@ def _fold_batchnorm(graph: onnx.GraphProto) -> tuple[int, int]:
             continue
         gamma, beta, mean, var = (numpy_helper.to_array(inits[n]).astype(np.float64) for n in node.input[1:5])
         eps = float(ops.attr(node, "epsilon", 1e-5))
-        k = gamma / np.sqrt(var + eps)
-        shift = beta - mean * k
+        if not (var + eps > 0).all():  # also catches NaN
+            raise QfitError(f"model: {where}: BatchNormalization '{node.name}' has a variance + epsilon that is "
+                            "not positive; it cannot be folded")
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):  # checked just below
+            k = gamma / np.sqrt(var + eps)
+            shift = beta - mean * k
+        _check_folded(where, node, k, shift)
         prev = producer.get(node.input[0])
         can_fold = (prev is not None and prev.op_type in ("Conv", "ConvTranspose", "Gemm")
                     and len(users.get(prev.output[0], [])) == 1 and prev.output[0] not in outputs
@@ -279,23 +345,30 @@ def _fold_batchnorm(graph: onnx.GraphProto) -> tuple[int, int]:
                 axis = 0 if ops.attr(prev, "transB", 0) else 1
             if w.shape[axis] != k.shape[0]:
                 can_fold = False
+            elif len(prev.input) > 2 and prev.input[2]:
+                # a bias of another shape (a Gemm's C may broadcast) is not one value per channel
+                bias_dims = tuple(inits[prev.input[2]].dims)
+                can_fold = bias_dims == (k.shape[0],)
         if can_fold:
             bshape = [1] * w.ndim
             bshape[axis] = -1
-            w = w * k.reshape(bshape)
+            with np.errstate(over="ignore", invalid="ignore"):  # _check_folded refuses non-finite results
+                w = w * k.reshape(bshape)
             b = (numpy_helper.to_array(inits[prev.input[2]]).astype(np.float64)
                  if len(prev.input) > 2 and prev.input[2] else np.zeros(k.shape[0]))
             has_bias = len(prev.input) > 2 and bool(prev.input[2])
             beta_g = float(ops.attr(prev, "beta", 1.0)) if prev.op_type == "Gemm" else 1.0
             if has_bias and beta_g != 0.0:
                 # Gemm: y = alpha*A@B + beta*C, so BN gives B' = k*B and C' = k*C + shift/beta
-                b = b * k + shift / beta_g
+                with np.errstate(over="ignore", invalid="ignore"):
+                    b = b * k + shift / beta_g
             else:
                 b = shift
                 if prev.op_type == "Gemm":
                     keep_attrs = [a for a in prev.attribute if a.name != "beta"]
                     del prev.attribute[:]
                     prev.attribute.extend(keep_attrs)
+            _check_folded(where, node, w, b)
             wname, bname = prev.input[1] + "_bnfold", node.output[0] + "_bias_bnfold"
             graph.initializer.append(numpy_helper.from_array(w.astype(np.float32), wname))
             graph.initializer.append(numpy_helper.from_array(b.astype(np.float32), bname))
@@ -434,6 +507,7 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     work.CopyFrom(model)
     notes: list[str] = []
     _check(work, path)
+    _check_readable(work, path)
     original_opset = _default_opset(work)
     _fix_input_shapes(work, dict(input_shapes or {}), path)
     _constants_to_initializers(work.graph)
@@ -445,7 +519,7 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
         work = shape_inference.infer_shapes(work, strict_mode=True)
     except Exception as e:
         raise QfitError(f"model: {path}: shape inference failed: {_first_line(e)}") from None
-    folded_bn, lone_bn = _fold_batchnorm(work.graph)
+    folded_bn, lone_bn = _fold_batchnorm(work.graph, path)
     folded_const = _fold_constants(work)
     _remove_unused_initializers(work.graph)
     del work.graph.value_info[:]

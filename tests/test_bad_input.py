@@ -263,6 +263,57 @@ def test_bad_input_external_data_file_missing(tmp_path, capfd, calib, model):
                    f"model: {path}: cannot load its external data")
 
 
+def test_bad_input_weight_containing_nan(tmp_path, capfd, calib, model):
+    loaded = onnx.load(model)
+    weight = numpy_helper.to_array(loaded.graph.initializer[0]).copy()
+    weight[0, 0, 0, 0] = np.nan
+    loaded.graph.initializer[0].CopyFrom(numpy_helper.from_array(weight, "w"))
+    path = save_model(loaded, tmp_path / "nan_weight.onnx")
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: initializer 'w' contains NaN")
+
+
+def test_bad_input_tensor_whose_bytes_do_not_match_its_shape(tmp_path, capfd, calib, model):
+    # The checker does not compare raw_data's length with the dims; the loader must.
+    loaded = onnx.load(model)
+    loaded.graph.initializer[1].raw_data = b"\0" * 32  # 'b' claims 4 floats = 16 bytes
+    path = save_model(loaded, tmp_path / "short_tensor.onnx")
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: initializer 'b' cannot be read as a tensor")
+
+
+def test_bad_input_name_that_is_not_utf8(tmp_path, capfd, calib, model):
+    loaded = onnx.load(model)
+    loaded.graph.node[1].name = "node_name_to_damage"
+    data = loaded.SerializeToString()
+    # a protobuf string is stored as its length then its bytes: swap two bytes for invalid UTF-8
+    assert data.count(b"node_name_to_damage") == 1
+    path = tmp_path / "bad_name.onnx"
+    path.write_bytes(data.replace(b"node_name_to_damage", b"node_name_\xff_damage\xfe"))
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: a name in node", "is not valid UTF-8 text")
+
+
+def test_bad_input_batchnorm_with_negative_variance(tmp_path, capfd, calib):
+    stats = [numpy_helper.from_array(np.array(v, np.float32), n) for n, v in
+             (("gamma", [1, 1, 1]), ("beta", [0, 0, 0]), ("mean", [0, 0, 0]), ("var", [1, -2, 1]))]
+    graph = helper.make_graph(
+        [helper.make_node("BatchNormalization", ["x", "gamma", "beta", "mean", "var"], ["bn"], name="bn"),
+         helper.make_node("GlobalAveragePool", ["bn"], ["pool"]), helper.make_node("Flatten", ["pool"], ["y"])],
+        "negative_variance", [helper.make_tensor_value_info("x", TensorProto.FLOAT, list(INPUT_SHAPE))],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 3])], stats)
+    path = save_model(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]),
+                      tmp_path / "negative_variance.onnx")
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: BatchNormalization 'bn' has a variance + epsilon that is not positive")
+
+
+def test_bad_input_shape_override_with_an_absurd_dimension(tmp_path, capfd, calib):
+    path = conv_model(input_dims=("batch", 3, 8, 8), folder=tmp_path, name="dynamic.onnx")
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out", "--input-shape", "x=1x3x8x" + "9" * 5000),
+                   tmp_path / "out", "--input-shape:", f"has a dimension larger than {2 ** 31 - 1}")
+
+
 # ------------------------------------------------------------------------------ data folders
 
 def test_bad_input_missing_calibration_folder(tmp_path, capfd, model):
@@ -456,6 +507,16 @@ def test_bad_input_labels_csv_missing(tmp_path, capfd, model, calib):
 def test_bad_input_size_string_does_not_parse(tmp_path, capfd, model, calib):
     args = ["check", model, "--calib", calib, "--flash", "1MiB", "--sram", "256QB", "--out", tmp_path / "out"]
     assert_refused(capfd, args, tmp_path / "out", "--sram: cannot read '256QB' as a size")
+
+
+def test_bad_input_size_with_a_line_break_stays_one_line(tmp_path, capfd, model, calib):
+    args = ["check", model, "--calib", calib, "--flash", "1MiB", "--sram", "256\nQB", "--out", tmp_path / "out"]
+    assert_refused(capfd, args, tmp_path / "out", "--sram: cannot read '256\\nQB' as a size")
+
+
+def test_bad_input_size_too_large(tmp_path, capfd, model, calib):
+    args = ["check", model, "--calib", calib, "--flash", "99999999999GiB", "--sram", "1MiB", "--out", tmp_path / "out"]
+    assert_refused(capfd, args, tmp_path / "out", "--flash: '99999999999GiB' is larger than any memory")
 
 
 def test_bad_input_unknown_calibration_method(tmp_path, capfd, model, calib):

@@ -83,6 +83,8 @@ def assert_only_complete_files(out, before):
             json.loads(content)
         elif name.endswith(".md"):
             assert content.decode("utf-8").startswith("# qfit report")
+        elif name.endswith(".html"):
+            assert content.decode("utf-8").rstrip().endswith("</html>")
         else:
             raise AssertionError(f"{name} changed or appeared, and it is no qfit output")
 
