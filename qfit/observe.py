@@ -14,12 +14,16 @@ computed afterwards from those statistics:
 """
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
 
 HIST_BINS = 4096  # over [-R, R]; 2048 bins per sign, as the entropy method expects
 DEFAULT_PERCENTILE = 99.99
+# Values are binned in slices of this many elements so the temporaries stay in the CPU cache
+# (a whole activation batch would stream through memory once per numpy operation).
+BIN_CHUNK = 1 << 16
 
 
 @dataclass
@@ -33,20 +37,24 @@ class TensorStats:
     radius: float = 0.0  # histogram covers [-radius, radius]
     hist: np.ndarray = field(default_factory=lambda: np.zeros(HIST_BINS, dtype=np.int64))
     nonfinite: int = 0
+    histogram: bool = True  # False: min/max/count only, enough for the min-max method
 
     def update(self, values: np.ndarray) -> None:
         flat = np.asarray(values, dtype=np.float32).ravel()
         if flat.size == 0:
             return
-        finite = np.isfinite(flat)
-        if not finite.all():
+        lo, hi = float(flat.min()), float(flat.max())
+        if not (np.isfinite(lo) and np.isfinite(hi)):  # NaN or Inf somewhere: min or max shows it
+            finite = np.isfinite(flat)
             self.nonfinite += int((~finite).sum())
             flat = flat[finite]
             if flat.size == 0:
                 return
-        lo, hi = float(flat.min()), float(flat.max())
+            lo, hi = float(flat.min()), float(flat.max())
         self.min, self.max = min(self.min, lo), max(self.max, hi)
         self.count += flat.size
+        if not self.histogram:
+            return
         needed = max(abs(lo), abs(hi))
         if self.radius == 0.0:
             if needed == 0.0:
@@ -59,9 +67,22 @@ class TensorStats:
                 self.hist[HIST_BINS // 2] = zeros
         while needed > self.radius:
             self._double()
-        index = ((flat + self.radius) * (HIST_BINS / (2 * self.radius))).astype(np.int64)
-        np.clip(index, 0, HIST_BINS - 1, out=index)
-        self.hist += np.bincount(index, minlength=HIST_BINS)
+        # bin = floor((x + R) * BINS / 2R), the same float32 arithmetic for every slice. x >= -R, so
+        # bins are >= 0; x = R (or a value rounding up to it) lands in an extra bin folded into the last.
+        per_bin = HIST_BINS / (2 * self.radius)
+        size = min(BIN_CHUNK, flat.size)
+        scaled = np.empty(size, np.float32)
+        index = np.empty(size, np.intp)
+        counts = np.zeros(HIST_BINS + 1, np.int64)
+        for start in range(0, flat.size, BIN_CHUNK):
+            part = flat[start:start + BIN_CHUNK]
+            n = part.size
+            np.add(part, self.radius, out=scaled[:n])
+            np.multiply(scaled[:n], per_bin, out=scaled[:n])
+            index[:n] = scaled[:n]  # truncation = floor for these non-negative values
+            counts += np.bincount(index[:n], minlength=HIST_BINS + 1)
+        counts[HIST_BINS - 1] += counts[HIST_BINS]
+        self.hist += counts[:HIST_BINS]
 
     def _double(self) -> None:
         # bins pair up: the old grid [-R, R] becomes the middle half of [-2R, 2R]
@@ -82,6 +103,9 @@ class TensorStats:
 def range_for(stats: TensorStats, method: str, bits: int = 8, symmetric: bool = False,
               percentile: float = DEFAULT_PERCENTILE) -> tuple[float, float]:
     """The (lo, hi) clipping range of `stats` by `method`; lo <= 0 <= hi always."""
+    if not stats.histogram and method != "minmax":
+        raise ValueError(f"tensor '{stats.name}': method {method!r} needs a histogram, but its statistics "
+                         f"were collected for min-max only")
     if stats.count == 0 or stats.radius == 0.0:
         return (min(stats.min, 0.0) if np.isfinite(stats.min) else 0.0,
                 max(stats.max, 0.0) if np.isfinite(stats.max) else 0.0)
@@ -146,46 +170,86 @@ def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
     if last <= levels:
         threshold_bin = last
     else:
-        best_kl, threshold_bin = np.inf, last
-        for i in range(levels, last + 1, max(1, (last - levels) // 256)):
-            p = magnitude[:i].copy()
-            p[i - 1] += magnitude[i:].sum()
-            kl = _kl_quantized(p, magnitude[:i], levels)
-            if kl < best_kl:
-                best_kl, threshold_bin = kl, i
+        sizes = np.arange(levels, last + 1, max(1, (last - levels) // 256))
+        kl = _kl_quantized(magnitude, sizes, levels)
+        best = float(np.min(kl))
+        if not np.isfinite(best):
+            threshold_bin = last
+        else:
+            # the first threshold reaching the minimum; values that differ by rounding only are ties
+            threshold_bin = int(sizes[np.argmax(kl <= best + 1e-12 + 1e-9 * best)])
     threshold = threshold_bin * stats.radius / half
     return (0.0 if positive_only else -threshold), threshold
 
 
-def _kl_quantized(p: np.ndarray, reference: np.ndarray, levels: int) -> float:
-    """KL(P || Q) where Q merges P's bins into `levels` groups, spread back over non-empty bins."""
-    n = p.size
-    group = (np.arange(n) * levels) // n
-    present = reference > 0
-    sums = np.bincount(group, weights=reference, minlength=levels)
-    nonempty = np.bincount(group, weights=present.astype(np.float64), minlength=levels)
-    q = np.where(present, sums[group] / np.maximum(nonempty[group], 1), 0.0)
-    p_sum, q_sum = p.sum(), q.sum()
-    if p_sum == 0 or q_sum == 0:
-        return np.inf
-    p, q = p / p_sum, q / q_sum
-    mask = p > 0
-    if np.any(q[mask] == 0):
-        return np.inf
-    return float(np.sum(p[mask] * np.log(p[mask] / q[mask])))
+ENTROPY_BLOCK = 64  # candidate thresholds evaluated together (bounds the temporaries to 64 x levels)
 
 
-def observe(model_runner, batches, tensors: list[str], progress=None) -> dict[str, TensorStats]:
+def _kl_quantized(magnitude: np.ndarray, sizes: np.ndarray, levels: int) -> np.ndarray:
+    """KL(P || Q) for each candidate threshold n in `sizes` (n >= levels), where
+         P = magnitude[:n] with the tail magnitude[n:] added to its last bin, normalised;
+         Q = P's bins merged into `levels` groups (bin j in group j * levels // n), each group's count
+             spread evenly over its non-empty bins, normalised.
+    Computed per group rather than per bin: with p_j = m_j (j < n-1) and q_j the share of j's group,
+        sum_j P_j log(P_j / Q_j) = (sum_j p_j log p_j - sum_g S_g log share_g - tail log share_last) / T
+                                   - log T + log(sum_j<n m_j)
+    (T = total count, S_g = count of group g), from cumulative sums; the counts are integers, so
+    every cumulative count is exact. Infinite when P has mass where Q has none (the last bin is
+    empty but the tail is not)."""
+    m = np.asarray(magnitude, np.float64)
+    total = m.sum()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m_log_m = np.where(m > 0, m * np.log(m), 0.0)
+    p_log_p_before = np.concatenate([[0.0], np.cumsum(m_log_m)])
+    counts_before = np.concatenate([[0.0], np.cumsum(m)])
+    filled_before = np.concatenate([[0], np.cumsum(m > 0)])
+    group_index = np.arange(levels + 1)[None, :]
+    out = np.empty(sizes.size)
+    for start in range(0, sizes.size, ENTROPY_BLOCK):
+        n = sizes[start:start + ENTROPY_BLOCK]
+        edges = (group_index * n[:, None] + levels - 1) // levels   # first bin of each group, and the end
+        group_counts = counts_before[edges[:, 1:]] - counts_before[edges[:, :-1]]
+        nonempty = filled_before[edges[:, 1:]] - filled_before[edges[:, :-1]]
+        share = group_counts / np.maximum(nonempty, 1)
+        tail = total - counts_before[n]
+        last_count = m[n - 1]
+        last_p = last_count + tail
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cross = np.where(group_counts > 0, group_counts * np.log(share), 0.0).sum(axis=1)
+            cross += np.where(tail > 0, tail * np.log(share[:, -1]), 0.0)
+            p_log_p = p_log_p_before[n - 1] + np.where(last_p > 0, last_p * np.log(last_p), 0.0)
+            kl = (p_log_p - cross) / total - np.log(total) + np.log(counts_before[n])
+        kl[(counts_before[n] == 0) | ((last_count == 0) & (tail > 0))] = np.inf
+        out[start:start + n.size] = kl
+    return out
+
+
+def observe(model_runner, batches, tensors: list[str], progress=None,
+            histograms: bool = True) -> dict[str, TensorStats]:
     """Run `model_runner(batch_inputs) -> dict name -> array` over `batches`, collecting stats.
 
     `model_runner` must return every name in `tensors`. `batches` yields qfit.data.Batch-like
     objects with `.inputs`. Memory: one TensorStats per tensor, independent of the sample count.
+    `histograms=False` keeps min/max only (the min-max method needs nothing else; it is faster).
     """
-    stats = {name: TensorStats(name) for name in tensors}
-    for batch in batches:
-        values = model_runner(batch.inputs)
+    stats = {name: TensorStats(name, histogram=histograms) for name in tensors}
+
+    def absorb(values: dict[str, np.ndarray]) -> None:
         for name in tensors:
             stats[name].update(values[name])
-        if progress is not None:
-            progress.update(len(batch.files))
+
+    # One worker bins batch k while this thread reads batch k+1 and onnxruntime runs it (numpy and
+    # onnxruntime release the GIL in their loops). The worker takes batches in order, one at a time,
+    # so the statistics are the same as a plain loop's; at most two batches of values are alive.
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="qfit-observe") as worker:
+        pending = None
+        for batch in batches:
+            values = model_runner(batch.inputs)
+            if pending is not None:
+                pending.result()
+            pending = worker.submit(absorb, values)
+            if progress is not None:
+                progress.update(len(batch.files))
+        if pending is not None:
+            pending.result()
     return stats

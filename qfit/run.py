@@ -75,27 +75,48 @@ class Runner:
                  batch_size: int = 16):
         self.outputs = list(outputs)
         self.faithful = faithful
-        extended = with_outputs(model, self.outputs)
-        self.session = ort.InferenceSession(extended.SerializeToString(), _options(faithful),
-                                            providers=["CPUExecutionProvider"])
+        self._extended = with_outputs(model, self.outputs)
+        self._session = None
         self.batched = None
         if batch_size > 1:
             try:
-                candidate = ort.InferenceSession(batch_free(extended).SerializeToString(), _options(faithful),
-                                                 providers=["CPUExecutionProvider"])
+                candidate = ort.InferenceSession(batch_free(self._extended).SerializeToString(),
+                                                 _options(faithful), providers=["CPUExecutionProvider"])
                 if self._batch_works(candidate):
                     self.batched = candidate
             except Exception:
                 self.batched = None
+        if self.batched is None:
+            self._session = self._fixed_session()
+
+    def _fixed_session(self) -> ort.InferenceSession:
+        return ort.InferenceSession(self._extended.SerializeToString(), _options(self.faithful),
+                                    providers=["CPUExecutionProvider"])
+
+    @property
+    def session(self) -> ort.InferenceSession:
+        """The session over the model as given (batch 1). Built on first use: when batches run through
+        the batch-free copy, a run of one sample may never come (building a session costs as much as
+        tens of runs of a small model)."""
+        if self._session is None:
+            self._session = self._fixed_session()
+        return self._session
 
     def _batch_works(self, session: ort.InferenceSession) -> bool:
+        # Batch 2 must give batch-2 outputs with the per-sample shapes of batch 1 (a model that
+        # hard-codes its batch in a Reshape does not). The model's own input shapes give the
+        # per-sample shapes, so the fixed-shape session is not needed for this check.
         feeds = {}
-        for inp in self.session.get_inputs():
-            shape = [d if isinstance(d, int) else 1 for d in inp.shape]
+        constants = {i.name for i in self._extended.graph.initializer}
+        for inp in self._extended.graph.input:
+            if inp.name in constants:
+                continue
+            dims = inp.type.tensor_type.shape.dim
+            shape = [d.dim_value if d.HasField("dim_value") else 1 for d in dims]
             feeds[inp.name] = np.zeros([2] + shape[1:], np.float32)
         try:
             got = session.run(self.outputs, feeds)
-            single = self.session.run(self.outputs, {k: v[:1] for k, v in feeds.items()})
+            single = session.run(self.outputs, {k: v[:1] for k, v in feeds.items()})
         except Exception:
             return False
         return all(g.shape[:1] == (2,) and g.shape[1:] == s.shape[1:] and s.shape[:1] == (1,)
