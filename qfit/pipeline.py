@@ -6,6 +6,7 @@ tests and later features can call them one by one.
 """
 from __future__ import annotations
 
+import math
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -496,5 +497,6 @@ def check_analysis_options(options: CheckOptions) -> None:
                         ("--repair-samples", options.repair_samples)):
         if value is None or value < 1:
             raise QfitError(f"{flag}: must be a positive number, got {value}")
-    if options.max_drop_pt is not None and not (options.max_drop_pt >= 0):
-        raise QfitError(f"--max-drop: must be a number of points >= 0, got {options.max_drop_pt}")
+    if options.max_drop_pt is not None and not math.isfinite(options.max_drop_pt):
+        # a negative target is allowed: it asks int8 to beat float by that many points
+        raise QfitError(f"--max-drop: must be a finite number of points, got {options.max_drop_pt}")
