@@ -33,7 +33,6 @@ exactly), and it is subtracted from the layer's bias. A layer kept float gets no
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -505,13 +504,3 @@ def bias_correction(loaded: LoadedModel, plan: Plan, quantized: QuantizedModel, 
         result.fixes[node.name] = BiasFix(node.name, bias_name, added, original.astype(np.float32),
                                           corrected, shift)
     return result
-
-
-def weight_range_ratio(loaded: LoadedModel, node_name: str) -> float:
-    """max / min per-output-channel weight range of one layer (1.0 = all channels alike)."""
-    node = next(n for n in loaded.graph.node if n.name == node_name)
-    return _channel_range_spread(_as_out_in(node, loaded.constants[node.input[1]]))
-
-
-def finite_or_none(value: float) -> float | None:
-    return None if value is None or not math.isfinite(value) else value

@@ -32,7 +32,7 @@ from qfit.load import LoadedModel
 from qfit.ops import QDQ_OPS
 from qfit.plan import Plan
 from qfit.quantize import QuantizedModel
-from qfit.run import _options as session_options, batch_free, with_outputs
+from qfit.run import Runner, _options as session_options, batch_free, with_outputs
 
 DEFAULT_SAMPLE_CAP = 64
 SWITCH_PREFIX = "qfit_switch_"
@@ -252,7 +252,6 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
     active = [row for row in layers if switch.layer_switches.get(row["name"])]
     tensors = list(dict.fromkeys([row["tensor"] for row in active] + [output]))
     names = [switch.value_of.get(t, t) for t in tensors]
-    from qfit.run import Runner  # the float model runs through the ordinary runner
     float_runner = Runner(reference.model, tensors, batch_size=batch_size)
     runner = SwitchRunner(switch, names, batch_size)
     classification = kind == "classification"

@@ -188,3 +188,22 @@ def test_cli_flags_reach_the_report_and_a_bad_value_is_one_line(setup, tmp_path,
                      "--isolated-samples", "-1", "--quiet"])
     err = capsys.readouterr().err
     assert code == 2 and err.count("\n") == 1 and "--isolated-samples" in err
+
+
+def test_a_score_output_has_no_drop_to_repair_and_the_report_says_so(tmp_path):
+    # A 4-D output is a score map, not classes (qfit.pipeline.output_kind): --max-drop cannot apply.
+    import through_qfit
+    from onnx import helper
+    rng = np.random.default_rng(0)
+    graph = helper.make_graph(
+        [helper.make_node("Conv", ["x", "w"], ["y"], pads=[1, 1, 1, 1], name="conv")], "score",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 2, 6, 6])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 3, 6, 6])],
+        [numpy_helper.from_array(rng.normal(0, 0.3, (3, 2, 3, 3)).astype(np.float32), "w")])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)], ir_version=9)
+    checked = through_qfit.check(model, tmp_path, via_cli=False, max_drop_pt=0.5, isolated_samples=8)
+    section = checked.report["repair"]
+    assert section["target_drop_pt"] == 0.5 and not section["steps"] and section["reached"] is None
+    assert "score" in section["reason"]
+    assert checked.report["sensitivity"]["metric"] == "output_sqnr_db"
+    assert checked.report["layers"][0]["output_sqnr_if_float_db"] is not None

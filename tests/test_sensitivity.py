@@ -157,13 +157,18 @@ def _quantized(model, samples):
 
 
 class _Samples:
-    def __init__(self, xs):
-        self.xs = xs
+    """Unlabelled in-memory samples (a list of (1, ...) arrays) with DataFolder's batches()."""
+
+    def __init__(self, xs, name="x"):
+        self.xs, self.name = xs, name
+
+    def __len__(self):
+        return len(self.xs)
 
     def batches(self, size):
         for i in range(0, len(self.xs), size):
             chunk = np.concatenate(self.xs[i:i + size])
-            yield Batch({"x": chunk}, None, [str(j) for j in range(i, i + len(chunk))])
+            yield Batch({self.name: chunk}, None, [str(j) for j in range(i, i + len(chunk))])
 
 
 def test_switch_model_with_every_switch_on_is_the_int8_model_and_off_the_float_model():
@@ -200,3 +205,24 @@ def test_isolated_error_equals_accumulated_error_for_the_first_layer():
         accumulated.update(float_runner({"x": x})["r1"], int8_runner({"x": x})[quantized.dequantized["r1"]])
     assert swept["rows"]["conv1"]["sqnr_isolated_db"] == pytest.approx(accumulated.sqnr_db(), abs=0.01)
     assert swept["samples_used"] == 8 and swept["metric"] == "output_sqnr_db"
+
+
+def test_without_labels_the_sensitivity_is_argmax_agreement_with_the_float_model():
+    # Definition (issue 4, end metrics): with no labels the end metric is agreement with float.
+    import zoo
+    loaded = prepare_model(zoo.ds_cnn_kws().model)
+    name = loaded.input_names[0]
+    xs = np.random.default_rng(3).normal(0, 1, (24, *loaded.shapes[name][1:])).astype(np.float32)
+    plan = make_plan(loaded, PlanOptions())
+    data = _Samples([x[None] for x in xs], name)
+    stats = pipeline.calibrate(loaded, plan, data, 8, False)
+    quantized = build_qdq(loaded, plan, calibrated_ranges(plan, stats, "percentile", 99.99))
+    layers = pipeline.compared_layers(loaded, plan)
+    swept = sensitivity.sweep(loaded, plan, quantized, layers, data, 8, "classification", sample_cap=16)
+    assert swept["metric"] == "agreement_drop_pt" and swept["samples_used"] == 16
+    row = swept["rows"][swept["ranking"][0]]
+    assert "sensitivity_agreement_pt" in row and "float_recovery_agreement_pt" in row
+    assert "sensitivity_pt" not in row
+    # disagreement counts whole samples: a multiple of 100 / 16 points
+    assert all(abs(r["sensitivity_agreement_pt"] * 16 / 100 - round(r["sensitivity_agreement_pt"] * 16 / 100)) < 1e-6
+               for r in swept["rows"].values() if r["sensitivity_agreement_pt"] is not None)
