@@ -30,6 +30,10 @@ def set_threads(n: int) -> None:
 def _options(faithful: bool) -> ort.SessionOptions:
     so = ort.SessionOptions()
     so.log_severity_level = 3
+    # Workers that busy-wait between operators take the cores from the numpy thread that bins or
+    # sums the previous batch meanwhile (qfit.observe, qfit.pipeline.evaluate), and from anything
+    # else running on a laptop; they sleep instead.
+    so.add_session_config_entry("session.intra_op.allow_spinning", "0")
     if _threads["intra"]:
         so.intra_op_num_threads = _threads["intra"]
         so.inter_op_num_threads = 1
