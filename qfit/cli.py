@@ -166,7 +166,10 @@ def _on_signal(signum, frame):
 
 
 def main(argv: list[str] | None = None) -> int:
+    # A shell starting qfit as a background job (as CI does) ignores SIGINT for it; install the
+    # handler explicitly so an interrupt always ends the run cleanly.
     signal.signal(signal.SIGTERM, _on_signal)
+    signal.signal(signal.SIGINT, _on_signal)
     try:
         parser = build_parser()
         args = parser.parse_args(argv)
