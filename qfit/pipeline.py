@@ -201,6 +201,18 @@ def output_paths(options: CheckOptions) -> dict[str, str]:
             "report_html": os.path.join(options.out_dir, "report.html")}
 
 
+def _budget_and_rows(loaded: LoadedModel, plan: Plan, budget_options, layers: list[dict],
+                     sums: dict[str, ErrorSums]):
+    """Budget the plan and fill each layer row's weight bytes and accumulated error figures."""
+    from qfit import budget as budget_module
+    budget_result = budget_module.analyze(loaded, plan, budget_options)
+    weight_bytes = weight_bytes_by_node(loaded, plan)
+    for row in layers:
+        row["weight_bytes_int8"] = weight_bytes.get(row["name"], 0)
+        row.update(sums[row["tensor"]].to_dict())
+    return budget_result, budget_result.to_dict()
+
+
 def check(options: CheckOptions) -> CheckResult:
     """Run the whole job; raise QfitError for bad input."""
     if options.method not in METHODS:
@@ -238,13 +250,7 @@ def check(options: CheckOptions) -> CheckResult:
                                                  sram_limit_bytes=options.sram_limit_bytes,
                                                  flash_reserve_bytes=options.flash_reserve_bytes,
                                                  **options.budget)
-    budget_result = budget_module.analyze(prepared.builder.loaded, plan, budget_options)
-    memory = budget_result.to_dict()
-
-    weight_bytes = weight_bytes_by_node(prepared.builder.loaded, plan)
-    for row in layers:
-        row["weight_bytes_int8"] = weight_bytes.get(row["name"], 0)
-        row.update(sums[row["tensor"]].to_dict())
+    budget_result, memory = _budget_and_rows(prepared.builder.loaded, plan, budget_options, layers, sums)
 
     analysis, repaired = sensitivity_and_repair(options, prepared, plan_options, layers, accuracy, budget_options)
     if repaired is not None:
@@ -255,12 +261,8 @@ def check(options: CheckOptions) -> CheckResult:
         layers = compared_layers(reference, plan)
         accuracy, sums = evaluate(reference, quantized, layers, eval_data, options.batch_size, options.threshold,
                                   options.progress)
-        budget_result = budget_module.analyze(prepared.builder.loaded, plan, budget_options)
-        memory = budget_result.to_dict()
-        weight_bytes = weight_bytes_by_node(prepared.builder.loaded, plan)
+        budget_result, memory = _budget_and_rows(prepared.builder.loaded, plan, budget_options, layers, sums)
         for row in layers:
-            row["weight_bytes_int8"] = weight_bytes.get(row["name"], 0)
-            row.update(sums[row["tensor"]].to_dict())
             old = before.get(row["name"], {})
             row.update({key: old.get(key) for key in analysed_keys})
         finish_repair(analysis["repair"], accuracy, memory)
