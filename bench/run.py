@@ -34,12 +34,15 @@ REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 sys.path.insert(0, REPO)
 sys.path.insert(0, os.path.join(REPO, "tests"))
 
-from qfit import budget, cli, pipeline, schedule  # noqa: E402
+from qfit.memory import budget  # noqa: E402
+from qfit import cli
+from qfit import check as pipeline
+from qfit.memory import schedule
 from qfit.data import DataFolder  # noqa: E402
-from qfit.load import prepare_model  # noqa: E402
-from qfit.plan import METHODS, make_plan  # noqa: E402
-from qfit.quantize import build_qdq, calibrated_ranges  # noqa: E402
-from qfit.run import Runner, batch_free, set_threads  # noqa: E402
+from qfit.graph.load import prepare_model  # noqa: E402
+from qfit.quant.plan import METHODS, make_plan  # noqa: E402
+from qfit.quant.quantize import build_qdq, calibrated_ranges  # noqa: E402
+from qfit.runtime.sessions import Runner, batch_free, set_threads  # noqa: E402
 
 import zoo  # noqa: E402  (tests/zoo.py: models built with onnx.helper)
 
@@ -254,10 +257,10 @@ RSS_CHILD = r"""
 import os, sys
 sys.path.insert(0, {repo!r}); sys.path.insert(0, os.path.join({repo!r}, "tests"))
 import zoo
-from qfit import pipeline
+from qfit import check as pipeline
 from qfit.data import DataFolder
-from qfit.load import prepare_model
-from qfit.plan import make_plan
+from qfit.graph.load import prepare_model
+from qfit.quant.plan import make_plan
 loaded = prepare_model(zoo.ds_cnn_kws().model)
 plan = make_plan(loaded)
 data = DataFolder({folder!r}, {{n: loaded.shapes[n] for n in loaded.input_names}}, limit={limit})

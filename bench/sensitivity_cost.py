@@ -21,12 +21,13 @@ import onnxruntime as ort
 sys.path.insert(0, os.path.join(os.path.dirname(os.path.abspath(__file__)), "..", "tests"))
 
 import zoo  # noqa: E402
-from qfit import pipeline, sensitivity  # noqa: E402
+from qfit import check as pipeline  # noqa: E402
+from qfit.measure import sensitivity
 from qfit.data import Batch  # noqa: E402
-from qfit.load import prepare_model  # noqa: E402
-from qfit.plan import PlanOptions, make_plan  # noqa: E402
-from qfit.quantize import build_qdq, calibrated_ranges  # noqa: E402
-from qfit.run import batch_free  # noqa: E402
+from qfit.graph.load import prepare_model  # noqa: E402
+from qfit.quant.plan import PlanOptions, make_plan  # noqa: E402
+from qfit.quant.quantize import build_qdq, calibrated_ranges  # noqa: E402
+from qfit.runtime.sessions import batch_free  # noqa: E402
 
 
 class InMemory:

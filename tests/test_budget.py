@@ -12,10 +12,11 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit import budget, qdq_read
+from qfit.memory import budget
+from qfit.quant import qdq_read
 from qfit.errors import QfitError
-from qfit.load import prepare_model
-from qfit.plan import PlanOptions, make_plan
+from qfit.graph.load import prepare_model
+from qfit.quant.plan import PlanOptions, make_plan
 
 sys.path.insert(0, os.path.dirname(__file__))
 import zoo  # noqa: E402
@@ -328,7 +329,7 @@ def test_qdq_read_back_counts_int8_int16_and_float_layers_as_worked_by_hand():
 
 def test_qdq_written_by_qfit_reads_back_to_the_same_budget():
     # Round trip: a plan -> qfit's QDQ writer -> qdq_read must give the same flash and SRAM figures.
-    from qfit import quantize
+    from qfit.quant import quantize
     zm = zoo.resnet_small()
     loaded = prepare_model(zm.model)
     # a Conv kept float is recognisable in QDQ (float weights); a weightless op kept float between

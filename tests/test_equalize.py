@@ -8,14 +8,15 @@ from onnx import TensorProto, helper, numpy_helper
 
 import zoo
 from digits_folders import INPUT_SHAPES, MODEL, write_folders
-from qfit import equalize, pipeline
-from qfit.compare import ErrorSums
+from qfit.quant import equalize
+from qfit import check as pipeline
+from qfit.measure.compare import ErrorSums
 from qfit.data import Batch
-from qfit.load import prepare_model
-from qfit.plan import PlanOptions, make_plan
-from qfit.quantize import quantize_weight
-from qfit.repair import ModelBuilder
-from qfit.run import Runner
+from qfit.graph.load import prepare_model
+from qfit.quant.plan import PlanOptions, make_plan
+from qfit.quant.quantize import quantize_weight
+from qfit.search.repair import ModelBuilder
+from qfit.runtime.sessions import Runner
 
 
 def separable(seed=0, spread_decades=3.0, activation="relu", size=12, positive_offsets=False):

@@ -21,7 +21,7 @@ from onnx import TensorProto, helper, numpy_helper
 from qfit.cli import main
 from qfit.data import MAX_CLASS_INDEX, parse_labels_csv
 from qfit.errors import QfitError
-from qfit.load import MAX_DIM, LoadedModel, load_model, parse_input_shapes
+from qfit.graph.load import MAX_DIM, LoadedModel, load_model, parse_input_shapes
 from qfit.sizes import MAX_SIZE_BYTES, parse_size
 
 FAST = settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])

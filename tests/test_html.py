@@ -25,7 +25,7 @@ import onnx
 import pytest
 
 from qfit.cli import main
-from qfit.html import render_html
+from qfit.report.html import render_html
 from qfit.sizes import format_size
 
 sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent))

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit import observe as observe_module
-from qfit.observe import BIN_CHUNK, HIST_BINS, TensorStats, observe, range_for
-from qfit.pipeline import CheckOptions, needs_histograms
-from qfit.run import Runner
+from qfit.quant import observe as observe_module
+from qfit.quant.observe import BIN_CHUNK, HIST_BINS, TensorStats, observe, range_for
+from qfit.check import CheckOptions, needs_histograms
+from qfit.runtime.sessions import Runner
 
 
 def reference_histogram(values: np.ndarray, radius: float) -> np.ndarray:

@@ -7,11 +7,11 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-from qfit.load import prepare_model
-from qfit.observe import TensorStats
-from qfit.plan import PlanOptions, make_plan
-from qfit.quantize import activation_params, build_qdq, calibrated_ranges, quantize_bias, quantize_weight
-from qfit.run import Runner
+from qfit.graph.load import prepare_model
+from qfit.quant.observe import TensorStats
+from qfit.quant.plan import PlanOptions, make_plan
+from qfit.quant.quantize import activation_params, build_qdq, calibrated_ranges, quantize_bias, quantize_weight
+from qfit.runtime.sessions import Runner
 
 
 def _single_conv_model(cin=3, cout=8, size=16, k=3, seed=0, relu=False):

@@ -15,9 +15,11 @@ import pytest
 from onnx import TensorProto, numpy_helper
 
 from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
-from qfit import cli, pipeline, repair
-from qfit.load import load_model
-from qfit.plan import PlanOptions, make_plan
+from qfit import cli
+from qfit import check as pipeline
+from qfit.search import repair
+from qfit.graph.load import load_model
+from qfit.quant.plan import PlanOptions, make_plan
 
 TARGET_PT = 0.5
 
@@ -163,7 +165,7 @@ def test_fallback_cost_of_keeping_the_classifier_float_matches_a_hand_count(buil
     # a zero point (1 B). The classifier is Gemm 32 -> 10: int8 320 + 10 x 5 + 10 x 4 = 410 B, float
     # 320 x 4 + 10 x 4 = 1,320 B; as float its output (a graph output read by no int8 layer) loses
     # its quantizer: -5 B. SRAM: the 10 logits grow by 30 B, far below the 3 KiB conv peak.
-    counter = repair.ByteCounter(builder.loaded, __import__("qfit.budget", fromlist=["x"]).BudgetOptions())
+    counter = repair.ByteCounter(builder.loaded, __import__("qfit.memory.budget", fromlist=["x"]).BudgetOptions())
     plan = builder.plan(PlanOptions())
     costs = repair.fallback_costs(builder, PlanOptions(), pipeline.compared_layers(builder.loaded, plan), counter)
     gemm = costs["/classifier/Gemm"]

@@ -13,9 +13,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit import budget, schedule
-from qfit.load import prepare_model
-from qfit.plan import make_plan
+from qfit.memory import budget
+from qfit.memory import schedule
+from qfit.graph.load import prepare_model
+from qfit.quant.plan import make_plan
 
 sys.path.insert(0, os.path.dirname(__file__))
 import zoo  # noqa: E402

@@ -9,14 +9,15 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
-from qfit import pipeline, sensitivity
-from qfit.compare import ErrorSums
+from qfit import check as pipeline
+from qfit.measure import sensitivity
+from qfit.measure.compare import ErrorSums
 from qfit.data import Batch
-from qfit.load import prepare_model
-from qfit.observe import TensorStats
-from qfit.plan import PlanOptions, make_plan
-from qfit.quantize import build_qdq, calibrated_ranges
-from qfit.run import Runner
+from qfit.graph.load import prepare_model
+from qfit.quant.observe import TensorStats
+from qfit.quant.plan import PlanOptions, make_plan
+from qfit.quant.quantize import build_qdq, calibrated_ranges
+from qfit.runtime.sessions import Runner
 
 
 @pytest.fixture(scope="module")

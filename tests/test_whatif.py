@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit import budget
-from qfit.load import prepare_model
-from qfit.plan import PlanOptions, make_plan
+from qfit.memory import budget
+from qfit.graph.load import prepare_model
+from qfit.quant.plan import PlanOptions, make_plan
 
 
 def _model(layers, input_shape, out_features=10, reshape_fixed=False):

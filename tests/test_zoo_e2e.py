@@ -19,9 +19,9 @@ sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent))
 import through_qfit as tq  # noqa: E402
 import zoo  # noqa: E402
 
-from qfit import budget  # noqa: E402
-from qfit.load import prepare_model  # noqa: E402
-from qfit.plan import make_plan  # noqa: E402
+from qfit.memory import budget  # noqa: E402
+from qfit.graph.load import prepare_model  # noqa: E402
+from qfit.quant.plan import make_plan  # noqa: E402
 
 MODELS = sorted(zoo.ZOO)
 CALIBRATION_SAMPLES = 16

@@ -28,8 +28,9 @@ import onnxruntime as ort
 from onnx import TensorProto, helper
 from onnx.reference import ReferenceEvaluator
 
-from qfit import cli, pipeline
-from qfit.run import Runner, batch_free
+from qfit import cli
+from qfit import check as pipeline
+from qfit.runtime.sessions import Runner, batch_free
 
 UNLIMITED = str(1 << 30)  # flash / SRAM limits that every test model fits
 

@@ -100,9 +100,13 @@ def _preprocess_from(args):
 
 
 def _run_check(args) -> int:
-    from qfit import files, html, pipeline, report as report_module, budget
-    from qfit.load import parse_input_shapes
-    from qfit.run import set_threads
+    from qfit import files
+    from qfit.report import html
+    from qfit import check as pipeline
+    from qfit.report import text as report_module
+    from qfit.memory import budget
+    from qfit.graph.load import parse_input_shapes
+    from qfit.runtime.sessions import set_threads
 
     flash = parse_size(args.flash, "--flash")
     sram = parse_size(args.sram, "--sram")
@@ -148,7 +152,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", parser_class=_Parser)
     _check_parser(sub)
     try:
-        from qfit import budget_cli
+        from qfit.cli import budget as budget_cli
         budget_cli.add_parser(sub)
     except ImportError:
         pass
@@ -176,7 +180,7 @@ def main(argv: list[str] | None = None) -> int:
         if args.command == "check":
             return _run_check(args)
         if args.command == "budget":
-            from qfit import budget_cli
+            from qfit.cli import budget as budget_cli
             return budget_cli.run(args)
         parser.print_help()
         return EXIT_BAD_INPUT

@@ -19,9 +19,9 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit.load import LoadedModel
-from qfit.observe import TensorStats, range_for
-from qfit.plan import Plan
+from qfit.graph.load import LoadedModel
+from qfit.quant.observe import TensorStats, range_for
+from qfit.quant.plan import Plan
 
 INT_RANGE = {8: (-128, 127), 16: (-32768, 32767)}
 WEIGHT_QMAX = {8: 127, 16: 32767}

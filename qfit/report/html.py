@@ -18,7 +18,7 @@ import json
 import math
 from html import escape
 
-from qfit.compare import SQNR_CAP_DB
+from qfit.measure.compare import SQNR_CAP_DB
 from qfit.sizes import format_size
 
 WORST_LAYERS_MARKED = 5

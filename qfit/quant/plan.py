@@ -22,7 +22,7 @@ import numpy as np
 from onnx import NodeProto, TensorProto
 
 from qfit import ops
-from qfit.load import LoadedModel
+from qfit.graph.load import LoadedModel
 
 METHODS = ("minmax", "percentile", "mse", "entropy")
 

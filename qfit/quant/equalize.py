@@ -41,10 +41,10 @@ import onnxruntime as ort
 from onnx import TensorProto, helper, numpy_helper
 
 from qfit import ops
-from qfit.load import LoadedModel
-from qfit.plan import Plan
-from qfit.quantize import QuantizedModel, quantize_weight
-from qfit.run import Runner
+from qfit.graph.load import LoadedModel
+from qfit.quant.plan import Plan
+from qfit.quant.quantize import QuantizedModel, quantize_weight
+from qfit.runtime.sessions import Runner
 
 EQUALIZED_OPS = ("Conv", "Gemm")
 SCALE_TOLERANCE = 1e-6   # stop sweeping when no scale moves by more than this (relative)

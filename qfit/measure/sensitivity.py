@@ -27,12 +27,12 @@ import onnx
 import onnxruntime as ort
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit.compare import ErrorSums, round_db
-from qfit.load import LoadedModel
+from qfit.measure.compare import ErrorSums, round_db
+from qfit.graph.load import LoadedModel
 from qfit.ops import QDQ_OPS
-from qfit.plan import Plan
-from qfit.quantize import QuantizedModel
-from qfit.run import Runner, _options as session_options, batch_free, with_outputs
+from qfit.quant.plan import Plan
+from qfit.quant.quantize import QuantizedModel
+from qfit.runtime.sessions import Runner, _options as session_options, batch_free, with_outputs
 
 DEFAULT_SAMPLE_CAP = 64
 SWITCH_PREFIX = "qfit_switch_"

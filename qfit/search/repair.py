@@ -24,11 +24,11 @@ from typing import Callable
 import numpy as np
 
 from qfit.errors import QfitError
-from qfit.load import TARGET_OPSET, LoadedModel
-from qfit.observe import TensorStats, observe
-from qfit.plan import METHODS, Plan, PlanOptions, make_plan
-from qfit.quantize import QuantizedModel, build_qdq, calibrated_ranges
-from qfit.run import Runner
+from qfit.graph.load import TARGET_OPSET, LoadedModel
+from qfit.quant.observe import TensorStats, observe
+from qfit.quant.plan import METHODS, Plan, PlanOptions, make_plan
+from qfit.quant.quantize import QuantizedModel, build_qdq, calibrated_ranges
+from qfit.runtime.sessions import Runner
 from qfit.sizes import format_size
 
 DEFAULT_LAYERS_TRIED = 8
@@ -77,7 +77,7 @@ class ModelBuilder:
         ranges = calibrated_ranges(plan, self.stats, self.method, self.percentile)
         source = self.loaded
         if self.bias_correction is not None and self.bias_correction.fixes:
-            from qfit.equalize import with_constants
+            from qfit.quant.equalize import with_constants
             source = with_constants(self.loaded, self.bias_correction.values_for(plan))
         return plan, build_qdq(source, plan, ranges)
 
@@ -88,7 +88,7 @@ class ByteCounter:
     """Flash total and SRAM peak of a plan, from qfit.budget, cached per precision choice."""
 
     def __init__(self, loaded: LoadedModel, budget_options):
-        from qfit import budget
+        from qfit.memory import budget
         self._budget = budget
         self.loaded = loaded
         self.options = replace(budget_options, what_if=False)

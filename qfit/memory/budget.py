@@ -13,10 +13,11 @@ import numpy as np
 from onnx import TensorProto, helper
 from tabulate import tabulate
 
-from qfit import ops, schedule
+from qfit import ops
+from qfit.memory import schedule
 from qfit.errors import QfitError
-from qfit.load import LoadedModel
-from qfit.plan import Plan, describe_node_precision
+from qfit.graph.load import LoadedModel
+from qfit.quant.plan import Plan, describe_node_precision
 from qfit.sizes import format_size
 
 FLOAT_BYTES = 4
@@ -531,7 +532,7 @@ def analyze(loaded: LoadedModel, plan: Plan, options: BudgetOptions | None = Non
     if wanted is None:
         wanted = flash["fits"] is False or sram["fits"] is False
     if wanted:
-        from qfit import whatif
+        from qfit.memory import whatif
         result.what_if = whatif.what_if(loaded, plan, options, result)
     return result
 
@@ -589,7 +590,7 @@ def _sections(result: BudgetResult) -> list[tuple[str, list[str], list[list], li
     rows = [[r["name"], r["op_type"], f"{r['macs']:,}", f"{r['elementwise_ops']:,}"] for r in top]
     out.append(("MACs (largest layers)", ["layer", "op", "MACs", "element ops"], rows, []))
     if result.what_if:
-        from qfit import whatif
+        from qfit.memory import whatif
         out.extend(whatif.sections(result.what_if))
     return out
 

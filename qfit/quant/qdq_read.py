@@ -21,8 +21,8 @@ from onnx import TensorProto, numpy_helper
 
 from qfit import ops
 from qfit.errors import QfitError
-from qfit.load import LoadedModel, prepare_model, read_model_file
-from qfit.plan import ActivationQuant, Plan, WeightQuant
+from qfit.graph.load import LoadedModel, prepare_model, read_model_file
+from qfit.quant.plan import ActivationQuant, Plan, WeightQuant
 
 _BITS = {TensorProto.INT8: 8, TensorProto.UINT8: 8, TensorProto.INT16: 16, TensorProto.UINT16: 16,
          TensorProto.INT4: 4, TensorProto.UINT4: 4, TensorProto.INT32: 32}

@@ -18,7 +18,8 @@ from __future__ import annotations
 import onnx
 from onnx import TensorProto, helper, shape_inference
 
-from qfit import ops, schedule
+from qfit import ops
+from qfit.memory import schedule
 from qfit.sizes import format_size
 
 RESOLUTION_STEPS = (8, 16)
@@ -139,7 +140,7 @@ def _consistent(loaded, shapes: dict) -> bool:
 
 
 def resolution_what_if(loaded, plan, options) -> dict:
-    from qfit import budget
+    from qfit.memory import budget
 
     found, why = _image_input(loaded)
     if found is None:

@@ -16,14 +16,14 @@ import onnx
 from tqdm import tqdm
 
 from qfit import __version__
-from qfit.compare import EndMetrics, ErrorSums
+from qfit.measure.compare import EndMetrics, ErrorSums
 from qfit.data import DataFolder, Preprocess
 from qfit.errors import QfitError
-from qfit.load import LoadedModel, load_model
-from qfit.observe import DEFAULT_PERCENTILE, TensorStats, observe
-from qfit.plan import METHODS, Plan, PlanOptions, make_plan
-from qfit.quantize import QuantizedModel, build_qdq, calibrated_ranges
-from qfit.run import FAITHFUL_PATH, Runner
+from qfit.graph.load import LoadedModel, load_model
+from qfit.quant.observe import DEFAULT_PERCENTILE, TensorStats, observe
+from qfit.quant.plan import METHODS, Plan, PlanOptions, make_plan
+from qfit.quant.quantize import QuantizedModel, build_qdq, calibrated_ranges
+from qfit.runtime.sessions import FAITHFUL_PATH, Runner
 
 CAUTION = ("These figures hold for the data measured and the arithmetic named above. Validate the int8 "
            "model on representative held-out data on the real device before relying on it. This report "
@@ -204,7 +204,7 @@ def output_paths(options: CheckOptions) -> dict[str, str]:
 def _budget_and_rows(loaded: LoadedModel, plan: Plan, budget_options, layers: list[dict],
                      sums: dict[str, ErrorSums]):
     """Budget the plan and fill each layer row's weight bytes and accumulated error figures."""
-    from qfit import budget as budget_module
+    from qfit.memory import budget as budget_module
     budget_result = budget_module.analyze(loaded, plan, budget_options)
     weight_bytes = weight_bytes_by_node(loaded, plan)
     for row in layers:
@@ -245,7 +245,7 @@ def check(options: CheckOptions) -> CheckResult:
     accuracy, sums = evaluate(reference, quantized, layers, eval_data, options.batch_size, options.threshold,
                               options.progress)
 
-    from qfit import budget as budget_module
+    from qfit.memory import budget as budget_module
     budget_options = budget_module.BudgetOptions(flash_limit_bytes=options.flash_limit_bytes,
                                                  sram_limit_bytes=options.sram_limit_bytes,
                                                  flash_reserve_bytes=options.flash_reserve_bytes,
@@ -339,8 +339,8 @@ def prepare_quantization(options: CheckOptions, loaded: LoadedModel, plan_option
                          stats: dict[str, TensorStats], quantized: QuantizedModel, calib: DataFolder,
                          eval_data: DataFolder) -> Prepared:
     """Cross-layer equalization and bias correction when asked for, each measured before and after."""
-    from qfit import equalize
-    from qfit.repair import ModelBuilder
+    from qfit.quant import equalize
+    from qfit.search.repair import ModelBuilder
 
     builder = ModelBuilder(loaded, stats, options.method, options.percentile, calib, options.batch_size)
     sections = {"equalization": {"enabled": bool(options.equalize)},
@@ -392,7 +392,8 @@ def sensitivity_and_repair(options: CheckOptions, prepared: Prepared, plan_optio
     "repair" and the PlanOptions chosen by the repair (None when nothing changed)."""
     from dataclasses import replace as dataclass_replace
 
-    from qfit import repair, sensitivity
+    from qfit.search import repair
+    from qfit.measure import sensitivity
 
     reference, builder = prepared.reference, prepared.builder
     counter_options = dataclass_replace(budget_options, what_if=False,

@@ -48,7 +48,7 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
 
 
 def options_from(args):
-    from qfit.budget import BudgetOptions
+    from qfit.memory.budget import BudgetOptions
 
     if (args.cycles_per_mac is None) != (args.clock_mhz is None):
         raise QfitError("--cycles-per-mac and --clock-mhz go together (latency = MACs x cycles / clock)")
@@ -96,9 +96,10 @@ def write_json_atomic(path: str, data: dict) -> None:
 
 
 def run(args) -> int:
-    from qfit import budget, qdq_read
-    from qfit.load import parse_input_shapes
-    from qfit.plan import make_plan
+    from qfit.memory import budget
+    from qfit.quant import qdq_read
+    from qfit.graph.load import parse_input_shapes
+    from qfit.quant.plan import make_plan
 
     options = options_from(args)
     loaded, plan, is_qdq = qdq_read.load_any(args.model, parse_input_shapes(args.input_shape))
@@ -110,7 +111,8 @@ def run(args) -> int:
     if args.json:
         write_json_atomic(args.json, report)
     if args.html:
-        from qfit import files, html
+        from qfit import files
+        from qfit.report import html
         folder = os.path.dirname(os.path.abspath(args.html))
         if not os.path.isdir(folder):
             raise QfitError(f"--html: folder {folder} does not exist")

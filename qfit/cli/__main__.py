@@ -1,0 +1,5 @@
+import sys
+
+from qfit.cli.main import main
+
+sys.exit(main())
