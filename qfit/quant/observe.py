@@ -9,8 +9,9 @@ computed afterwards from those statistics:
   percentile  the p-th and (100-p)-th percentiles (default p = 99.99), from the histogram CDF
   mse         the clipping range [a*min, a*max] minimising the expected squared quantization error
               over the histogram (a searched on a grid)
-  entropy     the threshold minimising KL(P || Q) between the clipped histogram and its quantized
-              version (Migacz, "8-bit Inference with TensorRT", GTC 2017)
+  entropy     the threshold minimising KL(P || Q) between the clipped histogram of |x| and its
+              quantized version: the KL-divergence threshold search of Migacz 2017, over every
+              candidate threshold, with exact zeros left out (see _entropy_range for why)
 """
 from __future__ import annotations
 
@@ -37,6 +38,7 @@ class TensorStats:
     radius: float = 0.0  # histogram covers [-radius, radius]
     hist: np.ndarray = field(default_factory=lambda: np.zeros(HIST_BINS, dtype=np.int64))
     nonfinite: int = 0
+    zeros: int = 0  # values exactly 0 (they sit in the histogram's bin [0, R/2048) too)
     histogram: bool = True  # False: min/max/count only, enough for the min-max method
 
     def update(self, values: np.ndarray) -> None:
@@ -59,6 +61,7 @@ class TensorStats:
         if self.radius == 0.0:
             if needed == 0.0:
                 self.hist[HIST_BINS // 2] += flat.size  # all zeros so far: the bin just above 0
+                self.zeros += flat.size
                 return
             self.radius = float(2.0 ** np.ceil(np.log2(needed)))
             if self.hist.any():  # zeros seen before a range existed: keep them at 0
@@ -74,15 +77,18 @@ class TensorStats:
         scaled = np.empty(size, np.float32)
         index = np.empty(size, np.intp)
         counts = np.zeros(HIST_BINS + 1, np.int64)
+        zeros = 0
         for start in range(0, flat.size, BIN_CHUNK):
             part = flat[start:start + BIN_CHUNK]
             n = part.size
+            zeros += int(np.count_nonzero(part == 0))
             np.add(part, self.radius, out=scaled[:n])
             np.multiply(scaled[:n], per_bin, out=scaled[:n])
             index[:n] = scaled[:n]  # truncation = floor for these non-negative values
             counts += np.bincount(index[:n], minlength=HIST_BINS + 1)
         counts[HIST_BINS - 1] += counts[HIST_BINS]
         self.hist += counts[:HIST_BINS]
+        self.zeros += zeros
 
     def _double(self) -> None:
         # bins pair up: the old grid [-R, R] becomes the middle half of [-2R, 2R]
@@ -161,16 +167,30 @@ def _mse_range(stats: TensorStats, bits: int, symmetric: bool) -> tuple[float, f
 
 
 def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
+    """Migacz 2017's KL-divergence threshold search on the histogram of |x| (2048 bins over [0, R]):
+    for every candidate threshold of n >= `levels` bins, P is the first n bins with the tail added
+    to the last one and Q merges the first n bins (without the tail) into `levels` groups
+    (_kl_quantized); the threshold is the first n reaching the smallest KL(P || Q).
+
+    Exact zeros are left out of the histogram first. A ReLU or ReLU6 output is often half zeros;
+    int8 stores 0 exactly (it is the zero point) at every threshold, yet kept in bin 0 that spike
+    is spread over its whole group by Q, which costs less the narrower the groups are. The search
+    then chose the smallest candidate ([0, 1] for ReLU6 outputs in [0, 6]) and wrecked the model.
+    """
     half = HIST_BINS // 2
     positive_only = stats.min >= 0
     # fold to |x|: bin j of `magnitude` covers [j, j+1) * radius / half
     magnitude = stats.hist[half:].astype(np.float64) + stats.hist[:half][::-1]
+    magnitude[0] -= stats.zeros
     levels = 2 ** bits if positive_only else 2 ** (bits - 1)
-    last = int(np.nonzero(magnitude)[0].max()) + 1
+    filled = np.nonzero(magnitude)[0]
+    if filled.size == 0:  # nothing but zeros: the range is the min-max one
+        return min(stats.min, 0.0), max(stats.max, 0.0)
+    last = int(filled.max()) + 1
     if last <= levels:
         threshold_bin = last
     else:
-        sizes = np.arange(levels, last + 1, max(1, (last - levels) // 256))
+        sizes = np.arange(levels, last + 1)
         kl = _kl_quantized(magnitude, sizes, levels)
         best = float(np.min(kl))
         if not np.isfinite(best):
