@@ -7,11 +7,15 @@ power-of-two exponent, so that factor ~= M0 * 2^(shift - 31) (Jacob et al., CVPR
 Two ways to apply it are in use (`ROUNDINGS`):
 
 * "double": the paper's reference scheme, which common MCU int8 kernel libraries implement (from
-  memory): a saturating rounding doubling high multiply (the high 32 bits of 2 * x * M0, rounded half
-  away from zero), then a rounding right shift (ties away from zero). Two roundings; their errors
-  can add up to one step, always away from zero at the tie.
+  memory): a saturating rounding doubling high multiply (the high 32 bits of 2 * x * M0, rounded to
+  nearest with ties towards +infinity: the reference code adds 2^30, or 1 - 2^30 for a negative
+  product, and divides truncating), then a rounding right shift (ties away from zero). Two roundings;
+  their errors can add up to one step.
 * "single": one rounding of the exact product x * M0 * 2^(shift - 31), half away from zero, as a
   kernel with a 64-bit intermediate does.
+
+`multiply_single_even` rounds once with ties to even, as the ONNX integer operators (QLinearConv,
+QLinearMatMul) specify; it exists to check kernels against the ONNX spec's worked cases.
 
 Every function takes numpy int64 arrays (broadcasting per-channel multipliers and shifts) and is exact:
 no floating point touches an accumulator.
@@ -59,40 +63,46 @@ def _saturate_int32(x: np.ndarray) -> np.ndarray:
     return np.clip(x, INT32_MIN, INT32_MAX)
 
 
-def _truncating_div_pow2(x: np.ndarray, bits: int) -> np.ndarray:
-    """x / 2^bits rounded toward zero, as C's integer division does."""
-    return np.where(x >= 0, x >> bits, -((-x) >> bits))
-
-
 def saturating_rounding_doubling_high_mul(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """High 32 bits of 2*a*b, rounded half away from zero; INT32_MIN * INT32_MIN saturates to INT32_MAX."""
+    """High 32 bits of 2*a*b, i.e. a*b / 2^31 rounded to nearest, ties towards +infinity;
+    INT32_MIN * INT32_MIN saturates to INT32_MAX.
+
+    The reference code adds 2^30 (1 - 2^30 for a negative product) and divides truncating towards
+    zero; for every product that is floor((a*b + 2^30) / 2^31), which an arithmetic shift computes."""
     a = np.asarray(a, dtype=np.int64)
     b = np.asarray(b, dtype=np.int64)
-    product = a * b  # |a|, |b| <= 2^31: the product fits int64
-    nudge = np.where(product >= 0, 1 << 30, 1 - (1 << 30))
-    high = _truncating_div_pow2(product + nudge, 31)
+    high = (a * b + (1 << 30)) >> 31  # |a|, |b| <= 2^31: the product fits int64
     return np.where((a == INT32_MIN) & (b == INT32_MIN), INT32_MAX, high)
 
 
 def rounding_divide_by_pow2(x: np.ndarray, exponent: np.ndarray) -> np.ndarray:
-    """x / 2^exponent rounded to nearest, ties away from zero (exponent in [0, 31])."""
+    """x / 2^exponent rounded to nearest, ties away from zero (exponent in [0, 62]).
+
+    floor((x + 2^(e-1) - 1 + [x >= 0]) / 2^e): a tie rounds up for x >= 0 and down for x < 0."""
     x = np.asarray(x, dtype=np.int64)
     exponent = np.asarray(exponent, dtype=np.int64)
-    mask = (np.int64(1) << exponent) - 1
-    remainder = x & mask
-    threshold = (mask >> 1) + (x < 0)
-    return (x >> exponent) + (remainder > threshold)
+    half = (np.int64(1) << exponent) >> 1
+    nudge = np.where(exponent > 0, half - 1, 0) + (x >= 0) * (exponent > 0)
+    return (x + nudge) >> exponent
+
+
+def _left_and_right(shift: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    shift = np.asarray(shift, dtype=np.int64)
+    return np.maximum(shift, 0), np.minimum(np.maximum(-shift, 0), 62)
 
 
 def multiply_double(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray) -> np.ndarray:
     """The two-step scheme: left shift (factor >= 1), doubling high multiply, rounding right shift."""
     acc = np.asarray(acc, dtype=np.int64)
-    shift = np.asarray(shift, dtype=np.int64)
-    left = np.maximum(shift, 0)
-    right = np.maximum(-shift, 0)
+    left, right = _left_and_right(shift)
     # A left shift that leaves int32 saturates here; the kernel's behaviour there is undefined in C.
     scaled = _saturate_int32(acc << left)
-    return rounding_divide_by_pow2(saturating_rounding_doubling_high_mul(scaled, m0), np.minimum(right, 62))
+    return rounding_divide_by_pow2(saturating_rounding_doubling_high_mul(scaled, m0), right)
+
+
+def _single_exponents(shift: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    shift = np.asarray(shift, dtype=np.int64)
+    return np.clip(31 - shift, 0, 62), np.clip(shift - 31, 0, 62)
 
 
 def multiply_single(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray) -> np.ndarray:
@@ -100,25 +110,33 @@ def multiply_single(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray) -> np.nd
 
     |acc| < 2^31 and M0 < 2^31 keep the product below 2^62; a factor >= 2^31 (shift > 31) is shifted
     left after the multiply and saturated to the int32 range."""
-    acc = np.asarray(acc, dtype=np.int64)
-    m0 = np.asarray(m0, dtype=np.int64)
-    shift = np.asarray(shift, dtype=np.int64)
-    product = acc * m0
-    right = np.clip(31 - shift, 0, 62)
-    left = np.clip(shift - 31, 0, 62)
-    half = np.where(right > 0, np.int64(1) << np.maximum(right - 1, 0), 0)
-    magnitude = (np.abs(product) + half) >> right
-    rounded = np.where(product < 0, -magnitude, magnitude)
+    product = np.asarray(acc, dtype=np.int64) * np.asarray(m0, dtype=np.int64)
+    right, left = _single_exponents(shift)
+    rounded = rounding_divide_by_pow2(product, right)
     return np.where(left > 0, _saturate_int32(rounded << np.minimum(left, 31)), rounded)
+
+
+def multiply_single_even(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray) -> np.ndarray:
+    """One rounding of acc * M0 * 2^(shift - 31), ties to even (the ONNX spec's rounding)."""
+    product = np.asarray(acc, dtype=np.int64) * np.asarray(m0, dtype=np.int64)
+    right, left = _single_exponents(shift)
+    floor = product >> right
+    remainder = product - (floor << right)
+    half = (np.int64(1) << right) >> 1
+    up = (right > 0) & ((remainder > half) | ((remainder == half) & (floor % 2 == 1)))
+    rounded = floor + up
+    return np.where(left > 0, _saturate_int32(rounded << np.minimum(left, 31)), rounded)
+
+
+SPEC_ROUNDING = "single-even"  # not a user option: the ONNX integer operators' rounding, for checks
+_MULTIPLY = {"double": multiply_double, "single": multiply_single, SPEC_ROUNDING: multiply_single_even}
 
 
 def multiply(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray, rounding: str) -> np.ndarray:
     """acc * M0 * 2^(shift - 31) in the named rounding ("double" or "single")."""
-    if rounding == "double":
-        return multiply_double(acc, m0, shift)
-    if rounding == "single":
-        return multiply_single(acc, m0, shift)
-    raise ValueError(f"unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
+    if rounding not in _MULTIPLY:
+        raise ValueError(f"unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
+    return _MULTIPLY[rounding](acc, m0, shift)
 
 
 def requantize(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray, zero_point: int, rounding: str,
@@ -127,5 +145,50 @@ def requantize(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray, zero_point: i
 
     An activation clamp fused into the layer (ReLU, ReLU6) narrows [low, high] to its quantized bounds,
     so the saturation and the clamp are one step, as in an int8 kernel."""
-    scaled = multiply(acc, m0, shift, rounding) + np.int64(zero_point)
+    scaled = multiply(acc, m0, shift, rounding) + np.asarray(zero_point, dtype=np.int64)
     return np.clip(scaled, low, high)
+
+
+class Requantizer:
+    """`requantize` with its per-channel constants prepared once, for the evaluation's hot loop.
+
+    Same integers as `requantize` (tests/test_integer_fixed_point.py checks it), in fewer passes over
+    the accumulator: when no channel's factor is >= 1 (no left shift; the usual case) the double
+    rounding is floor((acc*M0 + 2^30) / 2^31), then the rounding shift; the single rounding is one
+    rounding shift of acc*M0. `m0`, `shift` and `zero_point` broadcast against the accumulator.
+    """
+
+    def __init__(self, m0, shift, zero_point, rounding: str, low: int, high: int):
+        if rounding not in _MULTIPLY:
+            raise ValueError(f"unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
+        self.m0 = np.asarray(m0, dtype=np.int64)
+        self.shift = np.asarray(shift, dtype=np.int64)
+        self.zero_point = np.asarray(zero_point, dtype=np.int64)
+        self.rounding, self.low, self.high = rounding, int(low), int(high)
+        if rounding == "double":
+            left, right = _left_and_right(self.shift)
+            self.fast = not np.any(left)
+        else:
+            right, left = _single_exponents(self.shift)
+            self.fast = rounding == "single" and not np.any(left) and bool(np.all(right > 0))
+        self.right = right
+        self.nudge = np.where(right > 0, ((np.int64(1) << right) >> 1) - 1, 0)
+        self.rounds = (right > 0).astype(np.int64)
+        self.all_round = bool(np.all(self.rounds))
+
+    def __call__(self, acc: np.ndarray) -> np.ndarray:
+        """int32 output integers for an int64 (or smaller) accumulator array (not modified)."""
+        if not self.fast:
+            return requantize(acc, self.m0, self.shift, self.zero_point, self.rounding,
+                              self.low, self.high).astype(np.int32)
+        x = np.multiply(acc, self.m0, dtype=np.int64)
+        if self.rounding == "double":
+            x += 1 << 30
+            x >>= 31
+        non_negative = x >= 0
+        x += self.nudge
+        x += non_negative if self.all_round else non_negative * self.rounds
+        x >>= self.right
+        x += self.zero_point
+        np.clip(x, self.low, self.high, out=x)
+        return x.astype(np.int32)
