@@ -250,17 +250,18 @@ def test_flat_folder_has_no_labels(tmp_path):
     assert all(b.labels is None for b in folder.batches(2))
 
 
-def test_csv_with_class_names_maps_them_by_sorted_order(tmp_path):
+def test_csv_with_class_names_maps_them_by_the_given_class_order(tmp_path):
     image_folder(tmp_path, count=4)
     (tmp_path / "extra").mkdir()
     write_image(str(tmp_path / "extra" / "unused.png"), random_pixels(9, 8, 8))
     csv_path = tmp_path / "labels.csv"
     csv_path.write_text("file,label\nimg_002.png,dog\nimg_000.png,cat\r\n\nimg_001.png,eel\n")
-    folder = DataFolder(str(tmp_path), RGB_INPUT, labels_csv=str(csv_path), role="evaluation")
+    folder = DataFolder(str(tmp_path), RGB_INPUT, labels_csv=str(csv_path), role="evaluation",
+                        class_order=["eel", "cat", "dog"])
     # files not named in the CSV (img_003.png, extra/unused.png) are not used
     assert folder.files == ["img_000.png", "img_001.png", "img_002.png"]
-    assert folder.class_names == ["cat", "dog", "eel"]
-    assert folder.labels.tolist() == [0, 2, 1]
+    assert folder.class_names == ["eel", "cat", "dog"]
+    assert folder.labels.tolist() == [1, 0, 2]
     assert folder.describe()["labels"] == "csv"
 
 

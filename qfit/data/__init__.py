@@ -195,7 +195,10 @@ class DataFolder:
 
     def __init__(self, folder: str, inputs: dict[str, tuple[int, ...]], preprocess: Preprocess | None = None,
                  labels_csv: str | None = None, limit: int | None = None, seed: int = 0,
-                 skip_bad: bool = False, role: str = "calibration", num_classes: int | None = None):
+                 skip_bad: bool = False, role: str = "calibration", num_classes: int | None = None,
+                 class_order: list[str] | None = None):
+        """`preprocess` None: the user gave no preprocessing (arrays refuse one that was given).
+        `class_order`: the class names in the order of the model's outputs (see read_class_order)."""
         self.folder = folder
         self.role = role
         self.skip_bad = skip_bad
@@ -205,6 +208,9 @@ class DataFolder:
         self.class_names: list[str] | None = None
         self.labels: np.ndarray | None = None
         self.label_source: str | None = None
+        self.class_order_source: str | None = None
+        if class_order is not None:
+            check_class_order(class_order, num_classes)
         if not self.input_shapes:
             raise QfitError(f"{role} data: the model has no inputs to feed")
         for name, shape in self.input_shapes.items():
@@ -226,13 +232,21 @@ class DataFolder:
         if labels_csv is not None:
             subfolder_classes = top_dirs if all("/" in f for f in data_files) else None
             files, labels, self.class_names = read_labels_csv(
-                labels_csv, set(data_files), folder, subfolder_classes, num_classes)
+                labels_csv, set(data_files), folder, subfolder_classes, num_classes, class_order)
             self.label_source = "csv"
+            if self.class_names is not None:
+                self.class_order_source = "given" if class_order is not None else "subfolder names, sorted"
         elif top_dirs and all("/" in f for f in data_files):
             # Every sample sits in a top-level subfolder: those are the classes. Empty subfolders still
-            # count, so that indices match the sorted class list the model was trained on.
-            self.class_names = top_dirs
-            class_index = {name: i for i, name in enumerate(top_dirs)}
+            # count, so that indices match the sorted class list the model was trained on (the order
+            # folder-based training loaders use, common practice) unless the order is given.
+            self.class_names = list(class_order) if class_order is not None else top_dirs
+            self.class_order_source = "given" if class_order is not None else "subfolder names, sorted"
+            unknown = sorted(set(top_dirs) - set(self.class_names))
+            if unknown:
+                raise QfitError(f"{role} data: subfolder '{unknown[0]}' of {folder} is not in the class order "
+                                f"({', '.join(self.class_names[:10])}{', ...' if len(self.class_names) > 10 else ''})")
+            class_index = {name: i for i, name in enumerate(self.class_names)}
             labels = [class_index[f.split("/", 1)[0]] for f in files]
             self.label_source = "subfolders"
             if num_classes is not None and len(top_dirs) > num_classes:
@@ -240,6 +254,10 @@ class DataFolder:
                                 f"has {num_classes} classes")
 
         self.kind = self._kind_of(files)
+        if self.kind == "arrays" and preprocess is not None:
+            raise QfitError(f"{role} data: {folder} holds .npy/.npz arrays, which are fed to the model as they "
+                            f"are; preprocessing options (--preprocess, --size, --color, --layout, --scale, "
+                            f"--mean, --std) apply to images only: drop them or preprocess the arrays")
         if self.kind == "images":
             self._image_plan = self._plan_images()
 
@@ -299,6 +317,7 @@ class DataFolder:
             "skipped_files": [{"file": f, "reason": r} for f, r in self.skipped],
             "labels": self.label_source,
             "class_names": self.class_names,
+            "class_order": self.class_order_source,
         }
 
     # -------------------------------------------------------------------------------- internals
@@ -583,9 +602,44 @@ def _read_npy_header(f) -> tuple[tuple[int, ...], np.dtype]:
 
 # ------------------------------------------------------------------------------------ labels CSV
 
+def read_class_order(spec: str) -> list[str]:
+    """`--class-order`: a file with one class name per line (blank lines ignored), or else a
+    comma-separated list of names, in the order of the model's outputs."""
+    if os.path.isfile(spec):
+        where = f"--class-order: {spec}"
+        try:
+            with open(spec, "rb") as f:
+                text = f.read().decode("utf-8-sig")
+        except OSError as e:
+            raise QfitError(f"{where}: cannot read ({e.strerror or e})") from None
+        except UnicodeDecodeError as e:
+            raise QfitError(f"{where}: not UTF-8 text (bad byte at offset {e.start})") from None
+        names = [line.strip() for line in text.splitlines() if line.strip()]
+    elif "," in spec:
+        names = [name.strip() for name in spec.split(",")]
+    else:
+        raise QfitError(f"--class-order: '{spec}' is neither a file nor a comma-separated list of class names")
+    return check_class_order(names)
+
+
+def check_class_order(names: list[str], num_classes: int | None = None) -> list[str]:
+    """A class order names each class once, and as many classes as the model has outputs."""
+    if any(not name for name in names):
+        raise QfitError(f"--class-order: an empty class name (position {names.index('') + 1})")
+    seen: set[str] = set()
+    for name in names:
+        if name in seen:
+            raise QfitError(f"--class-order: class '{name}' is listed twice")
+        seen.add(name)
+    if num_classes is not None and len(names) != num_classes:
+        raise QfitError(f"--class-order: names {len(names)} classes but the model has {num_classes} outputs")
+    return list(names)
+
+
 def read_labels_csv(csv_path: str, data_files: set[str], folder: str = ".",
                     class_names: list[str] | None = None,
-                    num_classes: int | None = None) -> tuple[list[str], list[int], list[str] | None]:
+                    num_classes: int | None = None,
+                    class_order: list[str] | None = None) -> tuple[list[str], list[int], list[str] | None]:
     """Read a `file,label` CSV -> (sorted files, their labels, class names or None)."""
     where = f"labels CSV {csv_path}"
     try:
@@ -601,7 +655,7 @@ def read_labels_csv(csv_path: str, data_files: set[str], folder: str = ".",
         text = raw.decode("utf-8-sig")  # -sig: spreadsheet exports often start with a byte-order mark
     except UnicodeDecodeError as e:
         raise QfitError(f"{where}: not UTF-8 text (bad byte at offset {e.start})") from None
-    return parse_labels_csv(text, where, data_files, folder, class_names, num_classes)
+    return parse_labels_csv(text, where, data_files, folder, class_names, num_classes, class_order)
 
 
 def _resolve_inside(path_text: str, where: str, line: int) -> str:
@@ -620,9 +674,12 @@ def _resolve_inside(path_text: str, where: str, line: int) -> str:
 
 def parse_labels_csv(text: str, where: str, data_files: set[str], folder: str = ".",
                      class_names: list[str] | None = None,
-                     num_classes: int | None = None) -> tuple[list[str], list[int], list[str] | None]:
+                     num_classes: int | None = None,
+                     class_order: list[str] | None = None) -> tuple[list[str], list[int], list[str] | None]:
     """Parse CSV text. Rows are `file,label`; the first row is a header when its first cell is not a
-    data file name. Labels are all integer indices, or else class names."""
+    data file name. Labels are all integer indices, or else class names, whose indices come from
+    `class_order` (the model's output order) or else `class_names` (the sorted class subfolders).
+    Names with neither are refused: sorting them would guess an order the model may not have."""
     try:
         rows = [(reader_line, row) for reader_line, row in _csv_rows(text)]
     except csv.Error as e:
@@ -654,8 +711,8 @@ def parse_labels_csv(text: str, where: str, data_files: set[str], folder: str = 
     if all_integers:
         # Integers are the indices themselves. Subfolders need not be classes then (a folder split by
         # day, say), so they neither bound the indices nor name them.
-        names = None
-        limit = num_classes
+        names = list(class_order) if class_order is not None else None
+        limit = num_classes if class_order is None else len(class_order)
         labels = {}
         for line, rel, label_text in entries:
             index = _parse_index(label_text)
@@ -666,7 +723,12 @@ def parse_labels_csv(text: str, where: str, data_files: set[str], folder: str = 
                                 if limit is not None else f"{where}: line {line}: negative class index {label_text}")
             labels[rel] = index
     else:
-        names = class_names if class_names else sorted({label for _, _, label in entries})
+        names = class_order if class_order is not None else class_names
+        if not names:
+            example = next(label for _, _, label in entries if _parse_index(label) is None)
+            raise QfitError(f"{where}: labels are class names (e.g. '{example[:40]}') but the order of the "
+                            f"model's outputs is not known; give it with --class-order (names separated by "
+                            f"commas, or a file with one name per line)")
         class_index = {name: i for i, name in enumerate(names)}
         labels = {}
         for line, rel, label_text in entries:
