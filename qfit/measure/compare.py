@@ -230,7 +230,7 @@ class EndMetrics:
                 fc, qc = f == y, q == y
                 drop = paired_drop(fc, qc)
                 out.update({"metric": "top1", "float": float(100 * fc.mean()), "int8": float(100 * qc.mean()),
-                            **drop})
+                            **drop, **majority_figures(fc, y)})
                 if self.float_top5:
                     f5, q5 = np.concatenate(self.float_top5), np.concatenate(self.int8_top5)
                     out["top5"] = {"float": float(100 * f5.mean()), "int8": float(100 * q5.mean()),
@@ -246,6 +246,17 @@ class EndMetrics:
                 out["decision_flips_pct"] = float(100.0 * np.mean(fd != qd))
                 out["threshold"] = self.threshold
         return out
+
+
+def majority_figures(float_correct: np.ndarray, labels: np.ndarray) -> dict:
+    """The rate of always answering the most frequent class of these labels, and the p-value of the
+    float top-1 being above it (one-sided exact binomial test)."""
+    n = int(labels.size)
+    if n == 0:
+        return {"majority_class_pct": 0.0, "float_vs_majority_p": None}
+    rate = float(np.bincount(labels.astype(np.int64)).max()) / n
+    return {"majority_class_pct": 100.0 * rate,
+            "float_vs_majority_p": binomial_test_above(int(np.sum(float_correct)), n, rate)}
 
 
 def _in_top5(scores: np.ndarray, labels: np.ndarray) -> np.ndarray:
