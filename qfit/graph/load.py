@@ -1,16 +1,15 @@
 """load: an ONNX file -> a clean in-memory graph with static shapes.
 
 Steps: read (external data too) -> check -> opset to >= 21 (int16 QDQ needs it) -> fix dynamic input
-dims from overrides -> Constant nodes to initializers -> drop Identity/Dropout -> fold
-BatchNormalization into the preceding Conv/ConvTranspose/Gemm (a lone one becomes Mul+Add) -> fold
-nodes whose inputs are all constant -> shape inference -> every tensor must have a static shape.
-The file on disk is never written.
+dims from overrides -> the rewrites of graph/rewrite.py (Constant nodes to initializers, drop
+Identity/Dropout, fold BatchNormalization into the preceding Conv/ConvTranspose/Gemm or make it
+Mul+Add, fold nodes whose inputs are all constant) -> shape inference -> every tensor must have a
+static shape. The file on disk is never written.
 """
 from __future__ import annotations
 
 import os
 import re
-from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
@@ -18,43 +17,14 @@ from onnx import TensorProto, helper, numpy_helper, shape_inference
 
 from qfit import ops
 from qfit.errors import QfitError
+from qfit.graph import rewrite
+from qfit.graph.model import LoadedModel  # noqa: F401  (the loader's result type, importable from here)
 
 MIN_OPSET = 13
 TARGET_OPSET = 21  # first opset whose QuantizeLinear/DequantizeLinear accept int16
 
 MAX_DIM = 2 ** 31 - 1  # ONNX stores dims as int64; a larger one is a typo, not an MCU model
 _SHAPE = re.compile(r"^([^=]+)=([0-9]+(?:[x,][0-9]+)*)$")
-
-
-@dataclass
-class LoadedModel:
-    """A float model ready for every later stage. `model` is qfit's own copy."""
-
-    path: str
-    model: onnx.ModelProto
-    shapes: dict[str, tuple[int, ...]]
-    elem_types: dict[str, int]
-    constants: dict[str, np.ndarray]
-    notes: list[str] = field(default_factory=list)
-    original_opset: int = 0
-
-    @property
-    def graph(self) -> onnx.GraphProto:
-        return self.model.graph
-
-    @property
-    def input_names(self) -> list[str]:
-        return [i.name for i in self.model.graph.input]
-
-    @property
-    def output_names(self) -> list[str]:
-        return [o.name for o in self.model.graph.output]
-
-    def shape_of(self, name: str):
-        return self.shapes.get(name)
-
-    def constant(self, name: str):
-        return self.constants.get(name)
 
 
 def parse_input_shapes(specs: list[str] | None) -> dict[str, tuple[int, ...]]:
@@ -234,266 +204,6 @@ def _fix_input_shapes(model: onnx.ModelProto, overrides: dict[str, tuple[int, ..
     del model.graph.value_info[:]
 
 
-def _constants_to_initializers(graph: onnx.GraphProto) -> int:
-    keep, moved = [], 0
-    for node in graph.node:
-        if node.op_type == "Constant" and node.domain in ("", "ai.onnx"):
-            a = node.attribute[0]
-            if a.name == "value":
-                arr = numpy_helper.to_array(a.t)
-            elif a.name in ("value_float", "value_int"):
-                arr = np.array(helper.get_attribute_value(a), dtype=np.float32 if a.name == "value_float" else np.int64)
-            elif a.name in ("value_floats", "value_ints"):
-                arr = np.array(helper.get_attribute_value(a), dtype=np.float32 if a.name == "value_floats" else np.int64)
-            else:
-                keep.append(node)
-                continue
-            graph.initializer.append(numpy_helper.from_array(arr, node.output[0]))
-            moved += 1
-        else:
-            keep.append(node)
-    del graph.node[:]
-    graph.node.extend(keep)
-    return moved
-
-
-def _rename_input(graph: onnx.GraphProto, old: str, new: str) -> None:
-    for node in graph.node:
-        for i, name in enumerate(node.input):
-            if name == old:
-                node.input[i] = new
-
-
-def _drop_passthrough(graph: onnx.GraphProto) -> int:
-    """Remove Identity and Dropout (inference mode): consumers read the input directly."""
-    outputs = {o.name for o in graph.output}
-    dropped = 0
-    for node in list(graph.node):
-        if node.op_type not in ("Identity", "Dropout"):
-            continue
-        src, dst = node.input[0], node.output[0]
-        if dst in outputs:
-            # keep the graph output's name: rename the producer's output instead
-            for other in graph.node:
-                for i, name in enumerate(other.output):
-                    if name == src:
-                        other.output[i] = dst
-            _rename_input(graph, src, dst)
-            if src in {i.name for i in graph.input} | {i.name for i in graph.initializer}:
-                continue  # an input wired straight to an output: keep the Identity
-        else:
-            _rename_input(graph, dst, src)
-        graph.node.remove(node)
-        dropped += 1
-    return dropped
-
-
-def _consumers(graph: onnx.GraphProto) -> dict[str, list[onnx.NodeProto]]:
-    users: dict[str, list[onnx.NodeProto]] = {}
-    for node in graph.node:
-        for name in node.input:
-            users.setdefault(name, []).append(node)
-    return users
-
-
-def _check_folded(where: str, node: onnx.NodeProto, *arrays: np.ndarray) -> None:
-    for array in arrays:
-        with np.errstate(over="ignore", invalid="ignore"):
-            finite = np.isfinite(array.astype(np.float32)).all()
-        if not finite:
-            raise QfitError(f"model: {where}: folding BatchNormalization '{node.name}' gives values outside the "
-                            "float32 range (check its scale, mean and variance)")
-
-
-def _fold_batchnorm(graph: onnx.GraphProto, where: str = "<memory>") -> tuple[int, int]:
-    """Fold BN into the preceding Conv/ConvTranspose/Gemm; turn a lone BN into Mul+Add."""
-    inits = {i.name: i for i in graph.initializer}
-    outputs = {o.name for o in graph.output}
-    producer = {o: n for n in graph.node for o in n.output}
-    users = _consumers(graph)
-    folded = lone = 0
-    new_nodes = []
-    removed = set()
-    for node in graph.node:
-        if node.op_type != "BatchNormalization":
-            continue
-        if any(n not in inits for n in node.input[1:5]):
-            continue
-        gamma, beta, mean, var = (numpy_helper.to_array(inits[n]).astype(np.float64) for n in node.input[1:5])
-        eps = float(ops.attr(node, "epsilon", 1e-5))
-        if not (var + eps > 0).all():  # also catches NaN
-            raise QfitError(f"model: {where}: BatchNormalization '{node.name}' has a variance + epsilon that is "
-                            "not positive; it cannot be folded")
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):  # checked just below
-            k = gamma / np.sqrt(var + eps)
-            shift = beta - mean * k
-        _check_folded(where, node, k, shift)
-        prev = producer.get(node.input[0])
-        can_fold = (prev is not None and prev.op_type in ("Conv", "ConvTranspose", "Gemm")
-                    and len(users.get(prev.output[0], [])) == 1 and prev.output[0] not in outputs
-                    and len(prev.input) > 1 and prev.input[1] in inits
-                    and (len(prev.input) < 3 or not prev.input[2] or prev.input[2] in inits))
-        if can_fold and prev.op_type == "ConvTranspose" and ops.attr(prev, "group", 1) != 1:
-            can_fold = False
-        if can_fold:
-            w = numpy_helper.to_array(inits[prev.input[1]]).astype(np.float64)
-            if prev.op_type == "Conv":
-                axis = 0
-            elif prev.op_type == "ConvTranspose":
-                axis = 1
-            else:
-                axis = 0 if ops.attr(prev, "transB", 0) else 1
-            if w.shape[axis] != k.shape[0]:
-                can_fold = False
-            elif len(prev.input) > 2 and prev.input[2]:
-                # a bias of another shape (a Gemm's C may broadcast) is not one value per channel
-                bias_dims = tuple(inits[prev.input[2]].dims)
-                can_fold = bias_dims == (k.shape[0],)
-        if can_fold:
-            bshape = [1] * w.ndim
-            bshape[axis] = -1
-            with np.errstate(over="ignore", invalid="ignore"):  # _check_folded refuses non-finite results
-                w = w * k.reshape(bshape)
-            b = (numpy_helper.to_array(inits[prev.input[2]]).astype(np.float64)
-                 if len(prev.input) > 2 and prev.input[2] else np.zeros(k.shape[0]))
-            has_bias = len(prev.input) > 2 and bool(prev.input[2])
-            beta_g = float(ops.attr(prev, "beta", 1.0)) if prev.op_type == "Gemm" else 1.0
-            if has_bias and beta_g != 0.0:
-                # Gemm: y = alpha*A@B + beta*C, so BN gives B' = k*B and C' = k*C + shift/beta
-                with np.errstate(over="ignore", invalid="ignore"):
-                    b = b * k + shift / beta_g
-            else:
-                b = shift
-                if prev.op_type == "Gemm":
-                    keep_attrs = [a for a in prev.attribute if a.name != "beta"]
-                    del prev.attribute[:]
-                    prev.attribute.extend(keep_attrs)
-            _check_folded(where, node, w, b)
-            wname, bname = prev.input[1] + "_bnfold", node.output[0] + "_bias_bnfold"
-            graph.initializer.append(numpy_helper.from_array(w.astype(np.float32), wname))
-            graph.initializer.append(numpy_helper.from_array(b.astype(np.float32), bname))
-            prev.input[1] = wname
-            if len(prev.input) > 2:
-                prev.input[2] = bname
-            else:
-                prev.input.append(bname)
-            prev.output[0] = node.output[0]
-            removed.add(id(node))
-            folded += 1
-        else:
-            # y = x * k + shift with k, shift broadcast over the channel axis 1
-            rank = len(_value_rank(graph, node.input[0]) or [0, 0, 0, 0])
-            shape = [1] * max(rank, 2)
-            shape[1] = -1
-            kname, sname = node.output[0] + "_bn_scale", node.output[0] + "_bn_shift"
-            graph.initializer.append(numpy_helper.from_array(k.reshape(shape).astype(np.float32), kname))
-            graph.initializer.append(numpy_helper.from_array(shift.reshape(shape).astype(np.float32), sname))
-            mid = node.output[0] + "_bn_mul"
-            new_nodes.append((id(node), [
-                helper.make_node("Mul", [node.input[0], kname], [mid], name=(node.name or mid) + "_mul"),
-                helper.make_node("Add", [mid, sname], [node.output[0]], name=(node.name or mid) + "_add")]))
-            lone += 1
-    replacements = dict(new_nodes)
-    result = []
-    for node in graph.node:
-        if id(node) in removed:
-            continue
-        result.extend(replacements.get(id(node), [node]))
-    del graph.node[:]
-    graph.node.extend(result)
-    return folded, lone
-
-
-def _value_rank(graph: onnx.GraphProto, name: str):
-    for vi in list(graph.value_info) + list(graph.input) + list(graph.output):
-        if vi.name == name and vi.type.tensor_type.HasField("shape"):
-            return [d.dim_value for d in vi.type.tensor_type.shape.dim]
-    return None
-
-
-_FOLDABLE = {"Transpose", "Reshape", "Cast", "Squeeze", "Unsqueeze", "Concat", "Gather", "Shape",
-             "Mul", "Add", "Sub", "Div", "Neg", "Sqrt", "Pow", "Slice", "Flatten", "Range",
-             "ConstantOfShape", "Expand", "Equal", "Where", "Not", "ReduceProd", "Min", "Max", "Floor"}
-
-
-def _fold_constants(model: onnx.ModelProto) -> int:
-    """Evaluate nodes whose inputs are all constants (e.g. a weight Transpose, a Shape->Gather chain)."""
-    from onnx.reference import ReferenceEvaluator
-
-    graph = model.graph
-    folded = 0
-    changed = True
-    while changed:
-        changed = False
-        inits = {i.name: i for i in graph.initializer}
-        shapes = _static_shapes(model)
-        for node in list(graph.node):
-            if node.op_type not in _FOLDABLE or node.domain not in ("", "ai.onnx"):
-                continue
-            if node.op_type == "Shape":
-                shape = shapes.get(node.input[0])
-                if shape is None:
-                    continue
-                start, end = ops.attr(node, "start", 0), ops.attr(node, "end", None)
-                values = [np.array(shape[start:end], dtype=np.int64)]
-            else:
-                if not all((not n) or n in inits for n in node.input):
-                    continue
-                feeds = {n: numpy_helper.to_array(inits[n]) for n in node.input if n}
-                sub = helper.make_graph(
-                    [node], "fold",
-                    [helper.make_tensor_value_info(n, inits[n].data_type, None) for n in feeds],
-                    [helper.make_tensor_value_info(o, TensorProto.UNDEFINED, None) for o in node.output])
-                sub_model = helper.make_model(sub, opset_imports=model.opset_import)
-                try:
-                    values = ReferenceEvaluator(sub_model).run(None, feeds)
-                except Exception:
-                    continue
-            for name, value in zip(node.output, values):
-                graph.initializer.append(numpy_helper.from_array(np.asarray(value), name))
-            graph.node.remove(node)
-            folded += 1
-            changed = True
-            break
-    return folded
-
-
-def _static_shapes(model: onnx.ModelProto) -> dict[str, tuple[int, ...]]:
-    try:
-        inferred = shape_inference.infer_shapes(model)
-    except Exception:
-        inferred = model
-    shapes = {}
-    for vi in list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output):
-        tt = vi.type.tensor_type
-        if tt.HasField("shape") and all(d.HasField("dim_value") for d in tt.shape.dim):
-            shapes[vi.name] = tuple(d.dim_value for d in tt.shape.dim)
-    return shapes
-
-
-def _remove_unused_initializers(graph: onnx.GraphProto) -> None:
-    used = {n for node in graph.node for n in node.input} | {o.name for o in graph.output}
-    keep = [i for i in graph.initializer if i.name in used]
-    del graph.initializer[:]
-    graph.initializer.extend(keep)
-    inits = {i.name for i in keep}
-    inputs = [i for i in graph.input if i.name not in {x.name for x in graph.initializer} or i.name in inits]
-    # drop graph inputs that merely mirror initializers (old IR style)
-    inputs = [i for i in inputs if i.name not in inits]
-    del graph.input[:]
-    graph.input.extend(inputs)
-
-
-def _name_nodes(graph: onnx.GraphProto) -> None:
-    seen = set()
-    for i, node in enumerate(graph.node):
-        name = node.name or f"{node.op_type}_{i}"
-        while name in seen:
-            name = f"{name}_{i}"
-        node.name = name
-        seen.add(name)
-
-
 def load_model(path: str, input_shapes: dict[str, tuple[int, ...]] | None = None) -> LoadedModel:
     """Read `path` and prepare it for quantization and budgeting (see the module docstring)."""
     model = read_model_file(path)
@@ -510,18 +220,18 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     _check_readable(work, path)
     original_opset = _default_opset(work)
     _fix_input_shapes(work, dict(input_shapes or {}), path)
-    _constants_to_initializers(work.graph)
+    rewrite.constants_to_initializers(work.graph)
     work = _convert_opset(work, path, notes)
-    _name_nodes(work.graph)
-    moved = _constants_to_initializers(work.graph)
-    dropped = _drop_passthrough(work.graph)
+    rewrite.name_nodes(work.graph)
+    moved = rewrite.constants_to_initializers(work.graph)
+    dropped = rewrite.drop_passthrough(work.graph)
     try:
         work = shape_inference.infer_shapes(work, strict_mode=True)
     except Exception as e:
         raise QfitError(f"model: {path}: shape inference failed: {_first_line(e)}") from None
-    folded_bn, lone_bn = _fold_batchnorm(work.graph, path)
-    folded_const = _fold_constants(work)
-    _remove_unused_initializers(work.graph)
+    folded_bn, lone_bn = rewrite.fold_channel_affine(work.graph, path)
+    folded_const = rewrite.fold_constants(work)
+    rewrite.remove_unused_initializers(work.graph)
     del work.graph.value_info[:]
     try:
         work = shape_inference.infer_shapes(work, strict_mode=True, data_prop=True)
@@ -547,11 +257,11 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     if missing:
         raise QfitError(f"model: {path}: cannot determine a static shape for tensor '{missing[0]}' "
                         f"({len(missing)} tensors without a static shape)")
-    unsupported = sorted({n.op_type for n in work.graph.node if not ops.is_supported(n.op_type)})
+    unsupported = sorted({n.op_type for n in work.graph.node if not ops.is_supported(n)})
     if unsupported:
         notes.append(f"kept float (not supported in int8): {', '.join(unsupported)}")
     for node in work.graph.node:
-        reason = ops.float_reason(node, lambda name: name in constants) if ops.is_supported(node.op_type) else None
+        reason = ops.float_reason(node, lambda name: name in constants) if ops.is_supported(node) else None
         if reason:
             notes.append(f"kept float: {node.name} ({reason})")
     return LoadedModel(path=path, model=work, shapes=shapes, elem_types=elem_types,

@@ -19,7 +19,12 @@ import onnx
 from onnx import TensorProto, helper, shape_inference
 
 from qfit import ops
+from qfit.graph.model import LoadedModel
 from qfit.memory import schedule
+from qfit.memory.cost import macs_section
+from qfit.memory.options import BudgetOptions
+from qfit.memory.sram import MemoryModel, build_memory_model, sram_for
+from qfit.quant.plan import Plan
 from qfit.sizes import format_size
 
 RESOLUTION_STEPS = (8, 16)
@@ -28,27 +33,24 @@ TILE_COUNTS = (2, 3, 4)
 MAX_SPLIT_CANDIDATES = 16
 WHAT_IF_ORDER_TIME_LIMIT_S = 0.25   # order search per re-sized graph: a what-if, not the verdict
 
-_ELEMENTWISE = {"Relu", "Clip", "LeakyRelu", "PRelu", "Sigmoid", "HardSigmoid", "HardSwish", "Tanh",
-                "Add", "Sub", "Mul", "Div"}
-_WINDOWED = {"Conv", "MaxPool", "AveragePool"}
 
-
-def what_if(loaded, plan, options, result) -> dict:
-    """All what-if sections for one analysed model (`result` is its BudgetResult)."""
+def what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions, memory: MemoryModel, order: dict,
+            flash: dict, total_macs: int) -> dict:
+    """All what-if sections for one analysed model (`memory`, `order`, `flash`: its budget figures)."""
     out = {"sram_limit_bytes": options.sram_limit_bytes, "flash_limit_bytes": options.flash_limit_bytes}
     limit = options.sram_limit_bytes
-    out["order"] = {"default_peak_bytes": result.order["default_peak_bytes"],
-                    "best_peak_bytes": result.order["best_peak_bytes"],
-                    "saves_bytes": result.order["default_peak_bytes"] - result.order["best_peak_bytes"]}
+    out["order"] = {"default_peak_bytes": order["default_peak_bytes"],
+                    "best_peak_bytes": order["best_peak_bytes"],
+                    "saves_bytes": order["default_peak_bytes"] - order["best_peak_bytes"]}
     out["resolution"] = resolution_what_if(loaded, plan, options) if limit is not None else None
-    out["tiling"] = tiling_what_if(loaded, plan, options, result)
-    out["flash"] = flash_what_if(result.flash)
+    out["tiling"] = tiling_what_if(loaded, plan, options, memory, total_macs)
+    out["flash"] = flash_what_if(flash)
     return out
 
 
 # ---- (a) input resolution -----------------------------------------------------------------------
 
-def _image_input(loaded):
+def _image_input(loaded: LoadedModel):
     inputs = [n for n in loaded.input_names if n not in loaded.constants]
     if len(inputs) != 1:
         return None, "needs exactly one input"
@@ -60,7 +62,7 @@ def _image_input(loaded):
     return (inputs[0], shape, axes), ""
 
 
-def _light_model(loaded) -> onnx.ModelProto:
+def _light_model(loaded: LoadedModel) -> onnx.ModelProto:
     """A copy of the graph for shape inference only: big float initializers become typed graph
     inputs (shape inference needs their shapes, not their values), small ones stay (Resize scales
     and Reshape shapes are read by shape inference)."""
@@ -73,10 +75,7 @@ def _light_model(loaded) -> onnx.ModelProto:
     graph.input.extend(loaded.graph.input)
     graph.output.extend(loaded.graph.output)
     for init in loaded.graph.initializer:
-        numel = 1
-        for d in init.dims:
-            numel *= d
-        if init.data_type in (TensorProto.FLOAT, TensorProto.FLOAT16) and numel >= 64:
+        if init.data_type in (TensorProto.FLOAT, TensorProto.FLOAT16) and ops.numel(init.dims) >= 64:
             graph.input.append(helper.make_tensor_value_info(init.name, init.data_type, list(init.dims)))
         else:
             graph.initializer.append(init)
@@ -85,7 +84,7 @@ def _light_model(loaded) -> onnx.ModelProto:
     return model
 
 
-def shapes_at(light: onnx.ModelProto, loaded, input_name: str, new_shape) -> dict | None:
+def shapes_at(light: onnx.ModelProto, loaded: LoadedModel, input_name: str, new_shape) -> dict | None:
     """Static shapes of every tensor when `input_name` has `new_shape`, or None if inference fails."""
     model = onnx.ModelProto()
     model.CopyFrom(light)
@@ -109,39 +108,21 @@ def shapes_at(light: onnx.ModelProto, loaded, input_name: str, new_shape) -> dic
     return shapes
 
 
-def _numel(shape) -> int:
-    n = 1
-    for d in shape:
-        n *= int(d)
-    return n
-
-
-def _consistent(loaded, shapes: dict) -> bool:
+def _consistent(loaded: LoadedModel, shapes: dict) -> bool:
     """Shape inference accepts some graphs that cannot run at another size (a Reshape to a fixed
-    element count, a Gemm whose K no longer matches): reject those."""
+    element count, a Gemm whose K no longer matches): the registry's shape rules reject those."""
     for node in loaded.graph.node:
+        rule = ops.of(node).shapes_consistent
+        if rule is None:
+            continue
         get = [shapes.get(n) if n else None for n in node.input]
         out = shapes.get(node.output[0]) if node.output else None
-        if node.op_type in ("Reshape", "Flatten", "Squeeze", "Unsqueeze"):
-            if get and get[0] is not None and out is not None and _numel(get[0]) != _numel(out):
-                return False
-        elif node.op_type == "Gemm" and len(get) > 1 and get[0] and get[1]:
-            k_a = get[0][0] if ops.attr(node, "transA", 0) else get[0][-1]
-            k_b = get[1][-1] if ops.attr(node, "transB", 0) else get[1][0]
-            if k_a != k_b:
-                return False
-        elif node.op_type == "MatMul" and len(get) > 1 and get[0] and get[1] and len(get[1]) >= 2:
-            if get[0][-1] != get[1][-2]:
-                return False
-        elif node.op_type == "Conv" and len(get) > 1 and get[0] and get[1]:
-            if get[0][1] != get[1][1] * int(ops.attr(node, "group", 1)):
-                return False
+        if not rule(node, get, out):
+            return False
     return True
 
 
-def resolution_what_if(loaded, plan, options) -> dict:
-    from qfit.memory import budget
-
+def resolution_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions) -> dict:
     found, why = _image_input(loaded)
     if found is None:
         return {"skipped": why}
@@ -149,7 +130,7 @@ def resolution_what_if(loaded, plan, options) -> dict:
     h0, w0 = shape[h_axis], shape[w_axis]
     light = _light_model(loaded)
     limit = options.sram_limit_bytes
-    quick = budget.BudgetOptions(**{**options.__dict__, "what_if": False,
+    quick = BudgetOptions(**{**options.__dict__, "what_if": False,
                                     "order_time_limit_s": min(options.order_time_limit_s, WHAT_IF_ORDER_TIME_LIMIT_S)})
     tried: dict[tuple[int, int], dict] = {}
 
@@ -164,9 +145,9 @@ def resolution_what_if(loaded, plan, options) -> dict:
             row = {"height": h, "width": w, "arena_bytes": None, "peak_bytes": None,
                    "fits": None, "note": "shape inference fails or gives inconsistent shapes at this size"}
         else:
-            memory = budget.build_memory_model(loaded, plan, quick, shapes)
-            best, live, arena = budget.sram_for(memory, quick)
-            macs = budget._macs(loaded, quick, shapes)["total"]
+            memory = build_memory_model(loaded, plan, quick, shapes)
+            best, live, arena = sram_for(memory, quick)
+            macs = macs_section(loaded, quick, shapes)["total"]
             row = {"height": h, "width": w, "arena_bytes": arena["bytes"], "peak_bytes": best.peak_bytes,
                    "macs": macs, "fits": arena["bytes"] <= limit}
         tried[(h, w)] = row
@@ -208,73 +189,20 @@ def resolution_what_if(loaded, plan, options) -> dict:
 
 # ---- (b) tiled leading layers -------------------------------------------------------------------
 
-def _window(node, in_shape, out_shape, weight_shape=None):
-    """[(kernel, stride, dilation, pad_begin)] for the two spatial dims of a Conv/MaxPool/AveragePool."""
-    if node.op_type == "Conv":
-        kernel = ops.attr(node, "kernel_shape", None)
-        if kernel is None:   # optional: the weight's trailing dims
-            if weight_shape is None or len(weight_shape) != 4:
-                return None
-            kernel = weight_shape[2:]
-        kernel = list(kernel)
-    else:
-        kernel = list(ops.attr(node, "kernel_shape", [1, 1]))
-    if len(kernel) != 2:
-        return None
-    strides = list(ops.attr(node, "strides", [1, 1]))
-    dilations = list(ops.attr(node, "dilations", [1, 1]))
-    pads = list(ops.attr(node, "pads", [0, 0, 0, 0]))
-    auto_pad = ops.attr(node, "auto_pad", b"NOTSET")
-    auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
-    result = []
-    for d in range(2):
-        k, s, dil = kernel[d], strides[d], dilations[d]
-        if auto_pad in ("SAME_UPPER", "SAME_LOWER"):
-            total = max((out_shape[2 + d] - 1) * s + (k - 1) * dil + 1 - in_shape[2 + d], 0)
-            begin = total // 2 if auto_pad == "SAME_UPPER" else total - total // 2
-        elif auto_pad == "VALID":
-            begin = 0
-        else:
-            begin = pads[d]
-        result.append((k, s, dil, begin))
-    return result
-
-
-def _weight_shape(node, shapes):
-    return shapes.get(node.input[1]) if node.op_type == "Conv" and len(node.input) > 1 else None
-
-
 def _input_interval(lo: int, hi: int, k: int, s: int, dil: int, pad: int, size: int) -> tuple[int, int]:
     """Input rows [lo', hi'] an output interval [lo, hi] reads: lo*s - pad .. hi*s - pad + (k-1)*dil,
     clipped to the tensor (padding rows are not stored)."""
     return max(0, lo * s - pad), min(size - 1, hi * s - pad + (k - 1) * dil)
 
 
-def _tileable(node, shapes, constants) -> bool:
-    out = shapes.get(node.output[0]) if node.output else None
-    if out is None or len(out) != 4:
-        return False
-    acts = [n for n in node.input if n and n not in constants]
-    if node.op_type in _WINDOWED:
-        return len(acts) == 1 and _window(node, shapes[acts[0]], out, _weight_shape(node, shapes)) is not None
-    if node.op_type in _ELEMENTWISE:
-        for name in node.input:
-            if not name:
-                continue
-            shape = shapes.get(name)
-            if name in constants:
-                if shape and len(shape) >= 2 and any(d != 1 for d in shape[-2:]):
-                    return False   # a spatially varying constant would need slicing too
-            elif shape != out:
-                return False
-        return True
-    if node.op_type == "Concat":
-        return ops.attr(node, "axis", 0) in (1, -3) and all(
-            shapes.get(n) is not None and tuple(shapes[n][2:]) == tuple(out[2:]) for n in acts)
-    return False
+def _tileable(node, shapes: dict, constants: dict) -> bool:
+    """The registry says the node can run on a tile of rows and columns (a window op, a pointwise
+    op, a channel concat)."""
+    rule = ops.of(node).tileable
+    return rule is not None and rule(node, shapes.get, constants.__contains__)
 
 
-def _split_candidates(loaded, plan, memory) -> list[tuple[int, str]]:
+def _split_candidates(loaded: LoadedModel, plan: Plan, memory: MemoryModel) -> list[tuple[int, str]]:
     """(position p, tensor): after node p of the default order exactly one tensor is still needed,
     and every node up to p can be tiled."""
     nodes = memory.nodes
@@ -322,9 +250,10 @@ def _regions(nodes, p: int, split: str, tile, shapes, constants) -> dict[str, tu
             continue
         (r0, r1), (c0, c1) = outs[0]
         acts = [n for n in node.input if n and n not in constants]
-        if node.op_type in _WINDOWED:
-            (kh, sh, dh, ph), (kw, sw, dw, pw) = _window(node, shapes[acts[0]], shapes[node.output[0]],
-                                                         _weight_shape(node, shapes))
+        entry = ops.of(node)
+        windows = entry.window(node, shapes.get) if entry.window is not None else None
+        if windows is not None:
+            (kh, sh, dh, ph), (kw, sw, dw, pw) = windows
             h, w = shapes[acts[0]][2], shapes[acts[0]][3]
             needed = [(_input_interval(r0, r1, kh, sh, dh, ph, h), _input_interval(c0, c1, kw, sw, dw, pw, w))]
         else:
@@ -344,10 +273,8 @@ def _area(region) -> int:
     return max(0, r1 - r0 + 1) * max(0, c1 - c0 + 1)
 
 
-def tiling_what_if(loaded, plan, options, result) -> dict:
-    memory = result.memory
-    if memory is None:
-        return {"skipped": "no memory model"}
+def tiling_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions, memory: MemoryModel,
+                   total_macs: int) -> dict:
     nodes = memory.nodes
     shapes, constants = loaded.shapes, loaded.constants
     candidates = _split_candidates(loaded, plan, memory)
@@ -356,7 +283,6 @@ def tiling_what_if(loaded, plan, options, result) -> dict:
                            "tensor leaving it)", "options": []}
     problem = memory.problem
     default_live = schedule.liveness(problem, problem.default_order)
-    total_macs = result.macs["total"]
     node_macs = [sum(ops.cost(node, shapes.get)) for node in nodes]
     limit = options.sram_limit_bytes
     rows = []
@@ -394,7 +320,7 @@ def tiling_what_if(loaded, plan, options, result) -> dict:
             "options": rows}
 
 
-def _stage_peak(memory, p: int, split: str, regions: dict, shapes: dict) -> int:
+def _stage_peak(memory: MemoryModel, p: int, split: str, regions: dict, shapes: dict) -> int:
     """Peak of the tiled stage (nodes 0..p in the default order) for one tile: the graph input and
     the split tensor stay whole in SRAM for the whole stage, every other buffer is cut to the tile's
     region (rows x columns it needs, all channels)."""

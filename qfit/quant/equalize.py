@@ -38,15 +38,14 @@ from dataclasses import dataclass, field
 import numpy as np
 import onnx
 import onnxruntime as ort
-from onnx import TensorProto, helper, numpy_helper
+from onnx import TensorProto, numpy_helper
 
 from qfit import ops
-from qfit.graph.load import LoadedModel
+from qfit.graph.model import FreshNames, LoadedModel
 from qfit.quant.plan import Plan
 from qfit.quant.quantize import QuantizedModel, quantize_weight
 from qfit.runtime.sessions import Runner
 
-EQUALIZED_OPS = ("Conv", "Gemm")
 SCALE_TOLERANCE = 1e-6   # stop sweeping when no scale moves by more than this (relative)
 MAX_SWEEPS = 200
 
@@ -88,42 +87,24 @@ def with_constants(loaded: LoadedModel, values: dict[str, np.ndarray] | None = N
                        constants=constants, notes=list(loaded.notes), original_opset=loaded.original_opset)
 
 
-def _uses(graph: onnx.GraphProto) -> dict[str, int]:
-    counts: dict[str, int] = {}
-    for node in graph.node:
-        for name in node.input:
-            counts[name] = counts.get(name, 0) + 1
-    for out in graph.output:
-        counts[out.name] = counts.get(out.name, 0) + 1
-    return counts
+def _fresh_names(loaded: LoadedModel) -> FreshNames:
+    """Names for new bias initializers, clear of every tensor of `loaded`."""
+    return FreshNames(set(loaded.constants) | set(loaded.shapes))
 
 
-def _fresh_name(loaded: LoadedModel, base: str, taken: set[str]) -> str:
-    names = taken | set(loaded.constants) | set(loaded.shapes)
-    name, i = base, 1
-    while name in names:
-        name, i = f"{base}_{i}", i + 1
-    taken.add(name)
-    return name
+# ---- the weight layout every equalized layer is handled in -----------------------------------------
+# (out, in_per_group, k...) as for Conv; the registry's Equalization record converts (a Gemm's B to (N, K)).
 
+def _rule(node: onnx.NodeProto) -> ops.Equalization:
+    return ops.of(node).equalization
 
-# ---- the weight layout both layer types are handled in --------------------------------------------
-# (out, in_per_group, k...) as for Conv; a Gemm weight is brought to (N, K).
 
 def _as_out_in(node: onnx.NodeProto, w: np.ndarray) -> np.ndarray:
-    if node.op_type == "Gemm" and not ops.attr(node, "transB", 0):
-        return w.T.copy()
-    return w.copy()
-
-
-def _from_out_in(node: onnx.NodeProto, w: np.ndarray) -> np.ndarray:
-    if node.op_type == "Gemm" and not ops.attr(node, "transB", 0):
-        return w.T.copy()
-    return w
+    return _rule(node).to_out_in(node, w)
 
 
 def _groups(node: onnx.NodeProto) -> int:
-    return int(ops.attr(node, "group", 1)) if node.op_type == "Conv" else 1
+    return _rule(node).groups(node)
 
 
 def _input_slices(node: onnx.NodeProto, w: np.ndarray, channels: int) -> list[tuple[slice, int]]:
@@ -133,17 +114,6 @@ def _input_slices(node: onnx.NodeProto, w: np.ndarray, channels: int) -> list[tu
     per_group_out = w.shape[0] // groups
     return [(slice((i // per_group_in) * per_group_out, (i // per_group_in + 1) * per_group_out),
              i % per_group_in) for i in range(channels)]
-
-
-def _no_padding(node: onnx.NodeProto) -> bool:
-    if node.op_type == "Gemm":
-        return True
-    auto_pad = ops.attr(node, "auto_pad", b"NOTSET")
-    auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else auto_pad
-    if auto_pad in ("SAME_UPPER", "SAME_LOWER"):
-        kernel = ops.attr(node, "kernel_shape", None)
-        return kernel is not None and all(k == 1 for k in kernel)
-    return all(p == 0 for p in ops.attr(node, "pads", []) or [])
 
 
 # ---- pairs ----------------------------------------------------------------------------------------
@@ -160,41 +130,23 @@ class Pair:
     cap: float | None = None     # the activation's upper clip, when it has one
 
 
-def _clip_bounds(node: onnx.NodeProto, loaded: LoadedModel) -> tuple[float | None, float | None]:
-    def value(index: int, attr_name: str):
-        if len(node.input) > index and node.input[index]:
-            v = loaded.constant(node.input[index])
-            return None if v is None else float(np.asarray(v))
-        v = ops.attr(node, attr_name, None)
-        return None if v is None else float(v)
-    return value(1, "min"), value(2, "max")
-
-
 def find_pairs(loaded: LoadedModel) -> list[Pair]:
     """Conv/Gemm -> [ReLU | ReLU6 | Clip(0, c)] -> Conv/Gemm chains whose weights can be rescaled."""
     graph = loaded.graph
-    uses = _uses(graph)
-    outputs = set(loaded.output_names)
-    consumers: dict[str, list[onnx.NodeProto]] = {}
-    for node in graph.node:
-        for name in node.input:
-            consumers.setdefault(name, []).append(node)
-
-    def sole_consumer(tensor: str):
-        users = consumers.get(tensor, [])
-        return users[0] if len(users) == 1 and tensor not in outputs else None
+    index = loaded.index
+    sole_consumer = index.sole_consumer
 
     def rescalable(node: onnx.NodeProto) -> bool:
-        if node.op_type not in EQUALIZED_OPS or len(node.input) < 2:
+        if ops.of(node).equalization is None or len(node.input) < 2:
             return False
         w = loaded.constant(node.input[1])
-        if w is None or w.dtype != np.float32 or uses.get(node.input[1], 0) != 1:
+        if w is None or w.dtype != np.float32 or index.use_count(node.input[1]) != 1:
             return False
-        if node.op_type == "Gemm" and (ops.attr(node, "transA", 0) or w.ndim != 2):
+        if not _rule(node).rescalable(node, w):
             return False
         if len(node.input) > 2 and node.input[2]:
             b = loaded.constant(node.input[2])
-            if b is None or b.ndim != 1 or uses.get(node.input[2], 0) != 1:
+            if b is None or b.ndim != 1 or index.use_count(node.input[2]) != 1:
                 return False
         return True
 
@@ -207,14 +159,16 @@ def find_pairs(loaded: LoadedModel) -> list[Pair]:
         if nxt is None:
             continue
         activation, cap, link = "none", None, pre
-        if nxt.op_type == "Relu":
-            activation, link = "relu", nxt.output[0]
-        elif nxt.op_type == "Clip":
-            lo, hi = _clip_bounds(nxt, loaded)
+        bounds = ops.clamp_bounds(nxt, loaded.constant)
+        if bounds is not None:
+            # positively homogeneous only with a lower bound of exactly 0 (a ReLU, capped or not)
+            lo, hi = bounds
             if lo is None or lo != 0.0:
                 continue
             activation, cap, link = ("relu", None, nxt.output[0]) if hi is None else (
                 "relu6" if hi == 6.0 else "clip", hi, nxt.output[0])
+        elif ops.of(nxt).clamp_bounds is not None:
+            continue   # a clamp whose bounds are not constants
         if link != pre:
             nxt = sole_consumer(link)
             if nxt is None:
@@ -346,9 +300,9 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
             if p.activation == "none" or p.pre_activation not in extremes:
                 continue
             second = nodes[p.second]
-            if not _no_padding(second):
+            if not _rule(second).unpadded(second):
                 continue
-            if second.op_type == "Gemm" and (float(ops.attr(second, "beta", 1.0)) == 0.0):
+            if ops.bias_scale(second) == 0.0:
                 continue
             bottom, top = extremes[p.pre_activation]
             bottom, top = bottom / cumulative[k], top / cumulative[k]
@@ -358,8 +312,7 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
             if not np.any(c > 0):
                 continue
             w2 = weights[p.second]
-            alpha = float(ops.attr(second, "alpha", 1.0)) if second.op_type == "Gemm" else 1.0
-            beta = float(ops.attr(second, "beta", 1.0)) if second.op_type == "Gemm" else 1.0
+            alpha, beta = ops.product_scale(second), ops.bias_scale(second)
             shift = np.zeros(w2.shape[0])
             for (rows, col), ci in zip(_input_slices(second, w2, p.channels), c):
                 if ci > 0:
@@ -371,14 +324,14 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
 
     values: dict[str, np.ndarray] = {}
     new_biases: dict[str, tuple[str, np.ndarray]] = {}
-    taken: set[str] = set()
+    fresh = _fresh_names(loaded)
     for name, w in weights.items():
         node = nodes[name]
-        values[node.input[1]] = _from_out_in(node, w).astype(np.float32)
+        values[node.input[1]] = _rule(node).from_out_in(node, w).astype(np.float32)
         if len(node.input) > 2 and node.input[2]:
             values[node.input[2]] = biases[name].astype(np.float32)
         elif np.any(biases[name] != 0):
-            new_biases[name] = (_fresh_name(loaded, f"{name}_bias_equalized", taken), biases[name].astype(np.float32))
+            new_biases[name] = (fresh(f"{name}_bias_equalized"), biases[name].astype(np.float32))
     result.loaded = with_constants(loaded, values, new_biases)
     result.loaded.notes.append(f"cross-layer equalization: {len(pairs)} layer pairs rescaled"
                                + (f", {absorbed} channel offsets absorbed" if absorbed else ""))
@@ -428,35 +381,26 @@ class BiasCorrection:
                            for f in self.fixes.values()]}
 
 
-def _conv_of_mean(node: onnx.NodeProto, mean_input: np.ndarray, error: np.ndarray) -> np.ndarray:
-    """Conv(mean input map, weight error) with the node's own attributes, averaged per output channel."""
-    attrs = {a.name: helper.get_attribute_value(a) for a in node.attribute}
-    x = mean_input[None].astype(np.float32)
-    graph = helper.make_graph(
-        [helper.make_node("Conv", ["x", "w"], ["y"], **attrs)], "shift",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, list(x.shape))],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, None)],
-        [numpy_helper.from_array(error.astype(np.float32), "w")])
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 21)], ir_version=10)
+def _evaluate(model: onnx.ModelProto, feeds: dict[str, np.ndarray]) -> list[np.ndarray]:
+    """Run a small float model once on the CPU (the registry's mean-shift hooks build it)."""
     so = ort.SessionOptions()
     so.log_severity_level = 3
     session = ort.InferenceSession(model.SerializeToString(), so, providers=["CPUExecutionProvider"])
-    y = session.run(["y"], {"x": x})[0][0]
-    return y.reshape(y.shape[0], -1).mean(axis=1).astype(np.float64)
+    return session.run(None, feeds)
 
 
 def bias_correction(loaded: LoadedModel, plan: Plan, quantized: QuantizedModel, data, batch_size: int = 16
                     ) -> BiasCorrection:
     """Per-layer bias shifts from the int8 model's own inputs on `data` (see the module docstring)."""
     graph = loaded.graph
-    uses = _uses(graph)
+    index = loaded.index
     targets = []
     for node in graph.node:
-        if node.op_type not in EQUALIZED_OPS or node.name in plan.float_nodes:
+        if ops.of(node).equalization is None or node.name in plan.float_nodes:
             continue
         if (node.name, 1) not in plan.weights or node.input[0] not in plan.activations:
             continue
-        if node.op_type == "Gemm" and (ops.attr(node, "transA", 0) or float(ops.attr(node, "beta", 1.0)) == 0.0):
+        if not _rule(node).rescalable(node, loaded.constants[node.input[1]]) or ops.bias_scale(node) == 0.0:
             continue
         targets.append(node)
     result = BiasCorrection()
@@ -475,7 +419,7 @@ def bias_correction(loaded: LoadedModel, plan: Plan, quantized: QuantizedModel, 
     result.samples = count
     if count == 0:
         return result
-    taken: set[str] = set()
+    fresh = _fresh_names(loaded)
     for node in targets:
         mean_input = sums[quantized.dequantized[node.input[0]]] / count
         wq = plan.weights[(node.name, 1)]
@@ -485,21 +429,15 @@ def bias_correction(loaded: LoadedModel, plan: Plan, quantized: QuantizedModel, 
         if wq.axis is not None:
             shape[wq.axis] = -1
         error = q.astype(np.float64) * np.asarray(scale, np.float64).reshape(shape) - w.astype(np.float64)
-        if node.op_type == "Conv":
-            shift = _conv_of_mean(node, mean_input, error)
-        else:
-            alpha = float(ops.attr(node, "alpha", 1.0))
-            beta = float(ops.attr(node, "beta", 1.0))
-            b_matrix = error.T if ops.attr(node, "transB", 0) else error   # (K, N)
-            shift = alpha * (mean_input.reshape(-1) @ b_matrix) / beta
-        has_bias = len(node.input) > 2 and node.input[2] and uses.get(node.input[2], 0) == 1
+        shift = _rule(node).mean_shift(node, mean_input, error, _evaluate)
+        has_bias = len(node.input) > 2 and node.input[2] and index.use_count(node.input[2]) == 1
         if has_bias:
             bias_name, original, added = node.input[2], loaded.constants[node.input[2]].astype(np.float64), False
         else:
             shared = len(node.input) > 2 and node.input[2]
             original = (loaded.constants[node.input[2]].astype(np.float64) if shared
                         else np.zeros(shift.shape[0], np.float64))
-            bias_name, added = _fresh_name(loaded, f"{node.name}_bias_corrected", taken), True
+            bias_name, added = fresh(f"{node.name}_bias_corrected"), True
         corrected = (original - shift).astype(np.float32)
         result.fixes[node.name] = BiasFix(node.name, bias_name, added, original.astype(np.float32),
                                           corrected, shift)

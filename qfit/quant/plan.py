@@ -22,7 +22,7 @@ import numpy as np
 from onnx import NodeProto, TensorProto
 
 from qfit import ops
-from qfit.graph.load import LoadedModel
+from qfit.graph.model import GraphIndex, LoadedModel
 
 METHODS = ("minmax", "percentile", "mse", "entropy")
 
@@ -84,17 +84,9 @@ class PlanOptions:
     activation_methods: dict[str, str] = field(default_factory=dict)  # tensor -> method
 
 
-def _is_relu_clamp(node: NodeProto, loaded: LoadedModel) -> bool:
-    if node.op_type == "Relu":
-        return True
-    if node.op_type == "Clip":
-        return ops.is_relu6_clip(node, loaded.constant)
-    return False
-
-
 def quantized_input_indices(node: NodeProto, loaded: LoadedModel) -> list[int]:
     """Indices of the activation (non-constant, float) inputs of `node` that it reads as integers."""
-    entry = ops.info(node.op_type)
+    entry = ops.of(node)
     if not entry.is_quantized:
         return []
     wanted = range(len(node.input)) if entry.quantized_inputs is None else entry.quantized_inputs
@@ -120,12 +112,9 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
         elif node.name in options.float_nodes:
             plan.float_nodes.add(node.name)
     quantized = {n.name for n in graph.node if n.name not in plan.float_nodes}
-    producer = {o: n for n in graph.node for o in n.output}
-    consumers: dict[str, list[NodeProto]] = {}
+    graph_index = loaded.index
     reads_quantized: set[str] = set()
     for node in graph.node:
-        for name in node.input:
-            consumers.setdefault(name, []).append(node)
         if node.name in quantized:
             reads_quantized.update(node.input[i] for i in quantized_input_indices(node, loaded))
     outputs = set(loaded.output_names)
@@ -139,7 +128,7 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
         if name in reads_quantized:
             plan.activations[name] = new_quant(name)
     for node in graph.node:
-        entry = ops.info(node.op_type)
+        entry = ops.of(node)
         for out in node.output:
             if not out or loaded.elem_types.get(out, TensorProto.FLOAT) != TensorProto.FLOAT:
                 continue
@@ -147,16 +136,16 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
                 if out in reads_quantized:
                     plan.activations[out] = new_quant(out)
                 continue
-            users = consumers.get(out, [])
+            users = graph_index.consumers(out)
             if (entry.takes_fused_activation and len(users) == 1 and out not in outputs
-                    and users[0].name in quantized and _is_relu_clamp(users[0], loaded)
+                    and users[0].name in quantized and ops.is_fusable_clamp(users[0], loaded.constant)
                     and out not in options.activation_bits):
                 plan.fused[out] = users[0].output[0]
                 continue
             shared_from = None
             source = node.input[0] if node.input else None
-            if node.op_type in ("Relu", "Clip") and source in plan.fused:
-                pass  # the fused clamp's output is the producer's requantized output: its own range
+            if source in plan.fused:
+                pass  # this node is the clamp fused into the producer: the producer's requantized output
             elif ops.output_kind(node) == "shared" and source in plan.activations:
                 if plan.activations[source].bits == options.activation_bits.get(out, 8):
                     shared_from = source
@@ -178,17 +167,16 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
             if (bias in loaded.constants and weight is not None and node.input[0] in plan.activations
                     and loaded.constants[bias].ndim == 1):
                 plan.biases[(node.name, entry.bias)] = bias
-    _match_input_scales(plan, graph, quantized, consumers, set(loaded.input_names) | outputs)
+    _match_input_scales(plan, graph, quantized, graph_index, set(loaded.input_names) | outputs)
     return plan
 
 
-def _match_input_scales(plan: Plan, graph, quantized: set[str], consumers: dict[str, list[NodeProto]],
-                        fixed: set[str]) -> None:
+def _match_input_scales(plan: Plan, graph, quantized: set[str], index: GraphIndex, fixed: set[str]) -> None:
     """Inputs of an op whose int8 kernel copies bytes from several inputs (Concat) take its output's
     quantizer, so no input is requantized. An input keeps its own when something else reads it, when
     it is a graph input or output, or when its quantizer is already another tensor's."""
     for node in graph.node:
-        if node.name not in quantized or not ops.info(node.op_type).inputs_share_output or not node.output:
+        if node.name not in quantized or not ops.of(node).inputs_share_output or not node.output:
             continue
         out = node.output[0]
         target = plan.activations.get(out)
@@ -197,7 +185,7 @@ def _match_input_scales(plan: Plan, graph, quantized: set[str], consumers: dict[
         for name in node.input:
             q = plan.activations.get(name)
             if (q is None or q.shared_from is not None or name in fixed or q.bits != target.bits
-                    or [c.name for c in consumers.get(name, [])] != [node.name]):
+                    or [c.name for c in index.consumers(name)] != [node.name]):
                 continue
             q.shared_from = out
 

@@ -10,7 +10,8 @@ So that `qfit budget` counts a quantized model exactly as it was quantized — l
     a single number), an int32 bias input records the bias;
   * a node is quantized when its weights were integer constants, or (without weights) when it reads
     a dequantized tensor and its outputs are quantized again; a Conv/Gemm/Add output read only by a
-    quantized ReLU/Clip whose output is quantized is fused (never stored). Everything else is float.
+    quantized ReLU-family clamp (the registry's one rule, ops.is_fusable_clamp) whose output is
+    quantized is fused (never stored). Everything else is float.
 The input file is never modified.
 """
 from __future__ import annotations
@@ -21,7 +22,9 @@ from onnx import TensorProto, numpy_helper
 
 from qfit import ops
 from qfit.errors import QfitError
-from qfit.graph.load import LoadedModel, prepare_model, read_model_file
+from qfit.graph import rewrite
+from qfit.graph.load import prepare_model, read_model_file
+from qfit.graph.model import GraphIndex, LoadedModel
 from qfit.quant.plan import ActivationQuant, Plan, WeightQuant
 
 _BITS = {TensorProto.INT8: 8, TensorProto.UINT8: 8, TensorProto.INT16: 16, TensorProto.UINT16: 16,
@@ -29,7 +32,7 @@ _BITS = {TensorProto.INT8: 8, TensorProto.UINT8: 8, TensorProto.INT16: 16, Tenso
 
 
 def is_qdq_model(model: onnx.ModelProto) -> bool:
-    return any(n.op_type in ops.QDQ_OPS for n in model.graph.node)
+    return any(ops.is_qdq(n) for n in model.graph.node)
 
 
 def _zero_point_type(node, inits) -> int:
@@ -48,10 +51,10 @@ def _quant_params(node, inits) -> tuple:
     return tuple(values)
 
 
-def _feeds_quantized_clamp(tensor: str, consumers: dict, act_bits: dict) -> bool:
-    """A tensor read only by one ReLU/Clip whose output is quantized: a fused activation."""
-    users = consumers.get(tensor, [])
-    return (len(users) == 1 and users[0].op_type in ("Relu", "Clip")
+def _feeds_quantized_clamp(tensor: str, loaded: LoadedModel, act_bits: dict) -> bool:
+    """A tensor read only by one ReLU-family clamp whose output is quantized: a fused activation."""
+    users = loaded.index.consumers(tensor)
+    return (len(users) == 1 and ops.is_fusable_clamp(users[0], loaded.constant)
             and all(o in act_bits for o in users[0].output if o))
 
 
@@ -73,19 +76,9 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
     work.CopyFrom(model)
     graph = work.graph
     # Constant nodes (scales written as Constant) become initializers first.
+    rewrite.constants_to_initializers(graph)
     inits = {i.name: i for i in graph.initializer}
-    for node in list(graph.node):
-        if node.op_type == "Constant" and node.attribute and node.attribute[0].name == "value":
-            tensor = onnx.TensorProto()
-            tensor.CopyFrom(node.attribute[0].t)
-            tensor.name = node.output[0]
-            graph.initializer.append(tensor)
-            graph.node.remove(node)
-    inits = {i.name: i for i in graph.initializer}
-    consumers: dict[str, list[onnx.NodeProto]] = {}
-    for node in graph.node:
-        for name in node.input:
-            consumers.setdefault(name, []).append(node)
+    index = GraphIndex(graph)
     outputs = {o.name for o in graph.output}
 
     const_quant: dict[str, tuple[int, int | None]] = {}   # float constant name -> (bits, axis)
@@ -116,7 +109,7 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
             bits = _BITS.get(_zero_point_type(node, inits))
             if bits is None or bits > 16:
                 raise QfitError(f"model: {path}: QuantizeLinear '{node.name}' writes an unsupported integer type")
-            readers = consumers.get(q, [])
+            readers = index.consumers(q)
             if q in outputs or any(r.op_type != "DequantizeLinear" for r in readers):
                 raise QfitError(f"model: {path}: QuantizeLinear '{node.name}' output '{q}' is not only read by "
                                 "DequantizeLinear (integer graph outputs or integer operators are not supported)")
@@ -167,17 +160,11 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
 def _plan_from(loaded: LoadedModel, act_bits: dict[str, int], const_quant: dict) -> Plan:
     plan = Plan()
     graph = loaded.graph
-    consumers: dict[str, list[onnx.NodeProto]] = {}
-    producer = {}
-    for node in graph.node:
-        for name in node.input:
-            consumers.setdefault(name, []).append(node)
-        for out in node.output:
-            producer[out] = node
+    index = loaded.index
     quantized: set[str] = set()
     for node in graph.node:
-        entry = ops.info(node.op_type)
-        if not ops.is_supported(node.op_type):
+        entry = ops.of(node)
+        if not entry.is_quantized:
             plan.unsupported_nodes.add(node.name)
             plan.float_nodes.add(node.name)
             continue
@@ -187,12 +174,13 @@ def _plan_from(loaded: LoadedModel, act_bits: dict[str, int], const_quant: dict)
         else:
             acts = [n for n in node.input if n and n not in loaded.constants]
             reads_int = any(n in act_bits for n in acts)
-            if node.op_type in ("Relu", "Clip") and acts and acts[0] in producer:
-                prev = producer[acts[0]]
-                reads_int = reads_int or (prev.name in quantized and ops.info(prev.op_type).takes_fused_activation)
+            prev = index.producer(acts[0]) if acts else None
+            if prev is not None and ops.is_fusable_clamp(node, loaded.constant):
+                reads_int = reads_int or (prev.name in quantized and ops.of(prev).takes_fused_activation)
             outs = [o for o in node.output if o]
-            is_q = reads_int and bool(outs) and all(o in act_bits or (entry.takes_fused_activation and _feeds_quantized_clamp(o, consumers, act_bits))
-                                                    for o in outs)
+            is_q = reads_int and bool(outs) and all(
+                o in act_bits or (entry.takes_fused_activation and _feeds_quantized_clamp(o, loaded, act_bits))
+                for o in outs)
         if is_q:
             quantized.add(node.name)
         else:
@@ -201,7 +189,7 @@ def _plan_from(loaded: LoadedModel, act_bits: dict[str, int], const_quant: dict)
         plan.activations[name] = ActivationQuant(bits=bits, symmetric=bits > 8)
     for node in graph.node:
         # A data-movement op whose output quantizer equals its input's shares it (one scale stored).
-        if node.name in quantized and ops.info(node.op_type).output == "shared" and node.input:
+        if node.name in quantized and ops.of(node).output == "shared" and node.input:
             src, out = node.input[0], node.output[0]
             if src in act_bits and out in act_bits and act_bits[src] == act_bits[out]:
                 plan.activations[out].shared_from = src
@@ -209,11 +197,11 @@ def _plan_from(loaded: LoadedModel, act_bits: dict[str, int], const_quant: dict)
     for node in graph.node:
         if node.name not in quantized:
             continue
-        entry = ops.info(node.op_type)
+        entry = ops.of(node)
         for out in node.output:
-            users = consumers.get(out, [])
+            users = index.consumers(out)
             if (out and entry.takes_fused_activation and out not in act_bits and out not in outputs and len(users) == 1
-                    and users[0].op_type in ("Relu", "Clip") and users[0].name in quantized):
+                    and ops.is_fusable_clamp(users[0], loaded.constant) and users[0].name in quantized):
                 plan.fused[out] = users[0].output[0]
         for i, name in enumerate(node.input):
             if name not in const_quant:

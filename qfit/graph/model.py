@@ -1,0 +1,122 @@
+"""The loaded model and an index of its graph, built once and shared by every stage.
+
+`GraphIndex` answers the questions the stages used to answer with maps of their own: which node
+produces a tensor, which nodes read it (once per input slot, in graph order), how often it is used,
+its static shape and element count, and a name no tensor or node has yet.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+import onnx
+
+from qfit.ops import numel
+
+
+class FreshNames:
+    """Names not yet used: `fresh("x")` gives "x", then "x_1", "x_2", ... (each name once)."""
+
+    def __init__(self, taken):
+        self.taken = set(taken)
+
+    def __call__(self, base: str) -> str:
+        name, i = base, 1
+        while name in self.taken:
+            name, i = f"{base}_{i}", i + 1
+        self.taken.add(name)
+        return name
+
+
+class GraphIndex:
+    """Producers, consumers and names of one graph. Build it after the graph's last edit: it does not
+    follow later changes."""
+
+    def __init__(self, graph: onnx.GraphProto, shapes: dict | None = None):
+        self.graph = graph
+        self.nodes: list[onnx.NodeProto] = list(graph.node)
+        self.shapes = shapes if shapes is not None else {}
+        self.output_names = [o.name for o in graph.output]
+        self.initializer_names = {i.name for i in graph.initializer}
+        self._producer: dict[str, int] = {}
+        self._readers: dict[str, list[int]] = {}
+        for position, node in enumerate(self.nodes):
+            for name in node.output:
+                if name:
+                    self._producer[name] = position
+            for name in node.input:
+                self._readers.setdefault(name, []).append(position)
+
+    def producer(self, tensor: str) -> onnx.NodeProto | None:
+        """The node that writes `tensor` (None for graph inputs, initializers and unknown names)."""
+        position = self._producer.get(tensor)
+        return None if position is None else self.nodes[position]
+
+    def producer_position(self, tensor: str) -> int | None:
+        return self._producer.get(tensor)
+
+    def consumers(self, tensor: str) -> list[onnx.NodeProto]:
+        """Nodes that read `tensor`, once per input slot (a node reading it twice is listed twice)."""
+        return [self.nodes[p] for p in self._readers.get(tensor, [])]
+
+    def reader_positions(self, tensor: str) -> list[int]:
+        """Positions (in node order) of the nodes that read `tensor`, each once."""
+        return list(dict.fromkeys(self._readers.get(tensor, [])))
+
+    def sole_consumer(self, tensor: str) -> onnx.NodeProto | None:
+        """The one node reading `tensor` (in one input slot), when no graph output is `tensor` either."""
+        readers = self._readers.get(tensor, [])
+        return self.nodes[readers[0]] if len(readers) == 1 and tensor not in self.output_names else None
+
+    def use_count(self, tensor: str) -> int:
+        """Input slots reading `tensor`, plus one per graph output that is `tensor`."""
+        return len(self._readers.get(tensor, [])) + self.output_names.count(tensor)
+
+    def numel(self, tensor: str) -> int:
+        """Elements of `tensor` from its static shape (0 when unknown)."""
+        return numel(self.shapes.get(tensor))
+
+    def fresh_names(self) -> FreshNames:
+        """A name source that avoids every graph input, initializer and node output."""
+        taken = set(self._producer) | self.initializer_names | {i.name for i in self.graph.input}
+        return FreshNames(taken)
+
+
+@dataclass
+class LoadedModel:
+    """A float model ready for every later stage. `model` is qfit's own copy; no stage edits it after
+    loading (they edit copies), so `index` stays valid."""
+
+    path: str
+    model: onnx.ModelProto
+    shapes: dict[str, tuple[int, ...]]
+    elem_types: dict[str, int]
+    constants: dict[str, np.ndarray]
+    notes: list[str] = field(default_factory=list)
+    original_opset: int = 0
+
+    @property
+    def graph(self) -> onnx.GraphProto:
+        return self.model.graph
+
+    @property
+    def input_names(self) -> list[str]:
+        return [i.name for i in self.model.graph.input]
+
+    @property
+    def output_names(self) -> list[str]:
+        return [o.name for o in self.model.graph.output]
+
+    @cached_property
+    def index(self) -> GraphIndex:
+        return GraphIndex(self.model.graph, self.shapes)
+
+    def shape_of(self, name: str):
+        return self.shapes.get(name)
+
+    def constant(self, name: str):
+        return self.constants.get(name)
+
+    def is_constant(self, name: str) -> bool:
+        return name in self.constants

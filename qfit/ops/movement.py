@@ -1,0 +1,49 @@
+"""Data movement: values are copied, selected or regrouped, not computed, so the output keeps the
+input's scale (Concat: the inputs take the output's). Reshape and friends are views of the same bytes."""
+from __future__ import annotations
+
+import numpy as np
+from onnx import NodeProto
+
+from qfit.ops.registry import Op, ShapeOf, attr, attr_text, numel, register
+
+
+def _resize_is_nearest(node: NodeProto) -> bool:
+    # nearest-neighbour resizing copies input values, so the input's scale holds; linear and cubic
+    # modes compute new values and need a range of their own
+    return attr_text(node, "mode", "nearest") == "nearest"
+
+
+def _same_element_count(node: NodeProto, inputs: list, output) -> bool:
+    # a view keeps every element: a Reshape to a fixed element count cannot run at another size
+    return not (inputs and inputs[0] is not None and output is not None and numel(inputs[0]) != numel(output))
+
+
+def _tileable_channel_concat(node: NodeProto, shape_of: ShapeOf, is_constant) -> bool:
+    """A Concat along the channels of NCHW tensors with equal spatial sizes: tiles concatenate."""
+    out = shape_of(node.output[0]) if node.output else None
+    if out is None or len(out) != 4:
+        return False
+    acts = [n for n in node.input if n and not is_constant(n)]
+    return attr(node, "axis", 0) in (1, -3) and all(
+        shape_of(n) is not None and tuple(shape_of(n)[2:]) == tuple(out[2:]) for n in acts)
+
+
+_VIEW = dict(output="shared", alias="view", constant_foldable=True, shapes_consistent=_same_element_count)
+
+register({
+    "Concat": Op(quantized_inputs=None, inputs_share_output=True, constant_foldable=True,
+                 tileable=_tileable_channel_concat,
+                 note="inputs stored with the output's scale (a byte copy) when only the Concat reads "
+                      "them; otherwise requantized to it"),
+    "Split": Op(output="shared"),
+    "Slice": Op(output="shared", constant_foldable=True),
+    "Reshape": Op(**_VIEW),
+    "Flatten": Op(**_VIEW),
+    "Squeeze": Op(**_VIEW),
+    "Unsqueeze": Op(**_VIEW),
+    "Transpose": Op(output="shared", constant_foldable=True),
+    "Pad": Op(output="shared", note="constant pad value must be representable (0 is)"),
+    "Resize": Op(quantized_inputs=(0,), shares_when=_resize_is_nearest,
+                 note="nearest mode keeps the input's scale; linear and cubic modes requantize"),
+})

@@ -1,0 +1,33 @@
+"""Pooling and reductions: MaxPool, AveragePool, their global forms, ReduceMean (and ReduceProd,
+which the loader only evaluates on constants)."""
+from __future__ import annotations
+
+import numpy as np
+from onnx import NodeProto
+
+from qfit.ops.registry import Op, ShapeOf, attr, numel, register
+from qfit.ops.windows import pool_window, tileable_by
+
+
+def _window_ops(node: NodeProto, shape_of: ShapeOf) -> int:
+    kernel = attr(node, "kernel_shape", [1])
+    return numel(shape_of(node.output[0])) * int(np.prod(kernel))
+
+
+def _reduce_ops(node: NodeProto, shape_of: ShapeOf) -> int:
+    return numel(shape_of(node.input[0]))
+
+
+_WINDOWED = dict(cost=_window_ops, cost_kind="elementwise", window=pool_window, tileable=tileable_by(pool_window))
+_REDUCE = dict(cost=_reduce_ops, cost_kind="elementwise")
+
+register({
+    # the maximum of int8 values is one of them: the input's scale holds
+    "MaxPool": Op(output="shared", **_WINDOWED),
+    "AveragePool": Op(**_WINDOWED),
+    "GlobalAveragePool": Op(**_REDUCE),
+    "GlobalMaxPool": Op(output="shared", **_REDUCE),
+    "ReduceMean": Op(**_REDUCE),
+    "ReduceProd": Op(output="float", quantized_inputs=(), constant_foldable=True,
+                     note="not supported in int8: kept float"),
+})
