@@ -2,6 +2,7 @@
 
 1 KiB = 1 k = 1024 B and 1 MiB = 1 M = 1024 KiB, as MCU datasheets count memory.
 """
+import math
 import re
 from fractions import Fraction
 
@@ -9,6 +10,11 @@ from qfit.errors import QfitError
 
 MAX_SIZE_BYTES = 2 ** 63 - 1  # sizes are summed and compared as int64 in places (JSON readers, numpy)
 _MAX_DIGITS = 40
+
+# The ceiling on one tensor: 2**32 elements (16 GiB as float32), thousands of times any MCU memory.
+# Below it, every byte, element and MAC count qfit derives stays far inside int64, also where numpy
+# sums them; above it a shape is a typo or an attack and is refused, never wrapped around.
+MAX_TENSOR_ELEMENTS = 2 ** 32
 
 _UNITS = {"": 1, "b": 1, "k": 1024, "kb": 1024, "kib": 1024,
           "m": 1024 ** 2, "mb": 1024 ** 2, "mib": 1024 ** 2,
@@ -41,3 +47,21 @@ def format_size(n_bytes: float) -> str:
     if abs(n) < 1024 ** 2:
         return f"{n / 1024:.1f} KiB"
     return f"{n / 1024 ** 2:.2f} MiB"
+
+
+def element_count(shape) -> int:
+    """Elements of a tensor of `shape`, as a Python integer (exact, no int64 wrap-around); 0 when the
+    shape is unknown (None)."""
+    return math.prod(int(d) for d in shape) if shape is not None else 0
+
+
+def check_tensor_elements(shape, what: str) -> int:
+    """`element_count(shape)`, refused with a one-line message above MAX_TENSOR_ELEMENTS or when a
+    dimension is negative."""
+    if shape is not None and any(int(d) < 0 for d in shape):
+        raise QfitError(f"{what}: shape {'x'.join(str(int(d)) for d in shape)} has a negative dimension")
+    count = element_count(shape)
+    if count > MAX_TENSOR_ELEMENTS:
+        raise QfitError(f"{what}: shape {'x'.join(str(int(d)) for d in shape)} holds {count} elements, over "
+                        f"qfit's ceiling of {MAX_TENSOR_ELEMENTS} (2**32) per tensor")
+    return count

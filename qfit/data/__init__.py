@@ -21,6 +21,7 @@ import numpy as np
 from PIL import Image
 
 from qfit.errors import QfitError
+from qfit.files import MAX_SMALL_FILE_BYTES, NOT_REGULAR_REASON, read_regular_file, split_regular
 
 IMAGE_EXTENSIONS = (".png", ".jpg", ".jpeg", ".bmp", ".pgm", ".ppm")
 ARRAY_EXTENSIONS = (".npy", ".npz")
@@ -119,8 +120,7 @@ def load_preprocess(path: str) -> Preprocess:
     """Read a preprocessing JSON file whose keys are the Preprocess fields; missing keys keep defaults."""
     where = f"preprocess file {path}"
     try:
-        with open(path, encoding="utf-8") as f:
-            text = f.read()
+        text = read_regular_file(path, MAX_SMALL_FILE_BYTES, where).decode("utf-8")
     except FileNotFoundError:
         raise QfitError(f"{where}: no such file") from None
     except IsADirectoryError:
@@ -223,6 +223,8 @@ class DataFolder:
         if not os.path.isdir(folder):
             raise QfitError(f"{role} data: {folder}: not a folder")
         data_files, other_files, top_dirs = _discover(folder)
+        data_files, not_regular = split_regular(folder, data_files)  # a FIFO would block the pass forever
+        self.skipped += [(rel, NOT_REGULAR_REASON) for rel in not_regular]
         if not data_files:
             count = len(other_files)
             found = f" (found {count} other file{'s' if count != 1 else ''}, e.g. {other_files[0]})" if count else ""
@@ -643,8 +645,7 @@ def read_labels_csv(csv_path: str, data_files: set[str], folder: str = ".",
     """Read a `file,label` CSV -> (sorted files, their labels, class names or None)."""
     where = f"labels CSV {csv_path}"
     try:
-        with open(csv_path, "rb") as f:
-            raw = f.read()
+        raw = read_regular_file(csv_path, MAX_SMALL_FILE_BYTES, where)
     except FileNotFoundError:
         raise QfitError(f"{where}: no such file") from None
     except IsADirectoryError:
