@@ -29,6 +29,7 @@ from onnx import TensorProto, helper, numpy_helper
 
 from qfit.measure.compare import ErrorSums, round_db
 from qfit.graph.load import LoadedModel
+from qfit.graph.model import GraphIndex
 from qfit.ops import QDQ_OPS
 from qfit.quant.plan import Plan
 from qfit.quant.quantize import QuantizedModel
@@ -55,16 +56,9 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     switched off is exactly the float layer even when its int8 bias was corrected.
     """
     qgraph = quantized.model.graph
-    producer = {o: n for n in qgraph.node for o in n.output}
-    taken = ({o for n in qgraph.node for o in n.output} | {i.name for i in qgraph.initializer}
-             | {i.name for i in qgraph.input})
-
-    def fresh(base: str) -> str:
-        name, i = base, 1
-        while name in taken:
-            name, i = f"{base}_{i}", i + 1
-        taken.add(name)
-        return name
+    qindex = GraphIndex(qgraph)
+    producer = qindex.producer
+    fresh = qindex.fresh_names()
 
     result = SwitchModel(model=onnx.ModelProto())
     wheres_after: dict[str, onnx.NodeProto] = {}   # dequantized activation name -> Where emitted after its DQ
@@ -72,10 +66,10 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     activation_switch: dict[str, str] = {}
     for tensor in plan.activations:
         deq = quantized.dequantized.get(tensor)
-        dq = producer.get(deq)
+        dq = producer(deq)
         if dq is None or dq.op_type != "DequantizeLinear":
             continue
-        q = producer.get(dq.input[0])
+        q = producer(dq.input[0])
         if q is None or q.op_type != "QuantizeLinear":
             continue
         switch = fresh(f"{SWITCH_PREFIX}{len(result.switches)}")
@@ -104,7 +98,7 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
                 key = (node.name, i)
                 if key not in plan.weights and key not in plan.biases:
                     continue
-                made = producer.get(name)
+                made = producer(name)
                 if made is None or made.op_type != "DequantizeLinear":
                     continue
                 if node.name not in weight_switch:

@@ -143,15 +143,7 @@ def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, fl
     graph = loaded.graph
     initializers: list[onnx.TensorProto] = []
     new_nodes: list[onnx.NodeProto] = []
-    used_names = {o for n in graph.node for o in n.output} | {i.name for i in graph.initializer}
-    used_names |= set(loaded.input_names)
-
-    def fresh(base: str) -> str:
-        name, i = base, 1
-        while name in used_names:
-            name, i = f"{base}_{i}", i + 1
-        used_names.add(name)
-        return name
+    fresh = loaded.index.fresh_names()
 
     def add_init(array: np.ndarray, base: str) -> str:
         name = fresh(base)
