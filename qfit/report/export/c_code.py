@@ -141,6 +141,7 @@ typedef struct {
     uint32_t dilation[2];
     uint32_t groups;
     uint32_t axis;              /* CONCAT: joined axis */
+    uint32_t left_shift;        /* ADD: (q - zero_point) << left_shift before the input multipliers */
     int8_t act_min;             /* output clamp, int8 (fused ReLU/ReLU6 bounds) */
     int8_t act_max;
     const int8_t *weights;      /* CONV: [out][in/groups][kh][kw]; FULLY_CONNECTED: [out][in] */
@@ -150,7 +151,7 @@ typedef struct {
     uint32_t bias_count;
     const int32_t *multipliers; /* real factor = multiplier * 2^(shift - 31), or NULL */
     const int8_t *shifts;
-    uint32_t requant_count;     /* per output channel (CONV, FULLY_CONNECTED), else per input */
+    uint32_t requant_count;     /* see docs/export.md: per output channel, per input, or per position */
 } qmodel_layer;
 
 typedef struct {
@@ -208,7 +209,8 @@ def _layer_entry(layer, input_first: int, prefix: str) -> str:
     return (f"    {{ /* layer {layer.index} */ {c_string(layer.name)}, {p}_KIND_{layer.kind}, {layer.step}u, "
             f"{input_first}u, {len(layer.inputs)}u, {layer.output}u,\n"
             f"      {_dims(layer.kernel, 2)}, {_dims(layer.stride, 2)}, {_dims(layer.pads, 4)}, "
-            f"{_dims(layer.dilation, 2)}, {layer.groups}u, {layer.axis}u, {layer.act_min}, {layer.act_max},\n"
+            f"{_dims(layer.dilation, 2)}, {layer.groups}u, {layer.axis}u, {layer.left_shift}u, {layer.act_min}, "
+            f"{layer.act_max},\n"
             f"      {weights}, {_dims(layer.weights.shape if layer.weights else [], 4)},\n"
             f"      {_pointer_and_count(layer.bias, prefix)}, {requant} }},")
 

@@ -37,6 +37,7 @@ KIND_OF_OP = {"Conv": "CONV", "Gemm": "FULLY_CONNECTED", "MatMul": "FULLY_CONNEC
 # Kinds whose output takes the input's quantizer unchanged (no rescaling when the scales agree).
 PASS_THROUGH_KINDS = ("RESHAPE", "MAX_POOL", "GLOBAL_MAX_POOL")
 MAX_RANK = 4
+ADD_LEFT_SHIFT = 20   # the integer path's L for 8-bit inputs: (q - z) << 20 stays inside int32
 INT8_MIN, INT8_MAX = -128, 127
 
 
@@ -97,6 +98,7 @@ class Layer:
     dilation: list[int] = field(default_factory=lambda: [1, 1])
     groups: int = 1
     axis: int = 0             # CONCAT: the joined axis
+    left_shift: int = 0       # ADD: inputs are shifted left by this before their multipliers
     act_min: int = INT8_MIN
     act_max: int = INT8_MAX
     fused_activation: str | None = None   # name of the ReLU/Clip node folded into the clamp
@@ -304,6 +306,29 @@ def _weighted_layer(layer: Layer, node: onnx.NodeProto, ctx: _Context, in_t: str
     _requant(layer, np.float64(s_in) * s_w / np.float64(s_out), "input scale x weight scale / output scale")
 
 
+def _add_requant(layer: Layer, in_scales: list[float], s_out: float) -> None:
+    """ADD as the integer path runs it (qfit.ops.kernels.elementwise; Jacob et al., CVPR 2018, 2.4):
+    each input, centred and shifted left by L, is scaled by M(s_i / 2max), the sum by
+    M(2max / (2^L s_out)). Entry 0 is the output factor, entries 1 and 2 the inputs'."""
+    layer.left_shift = ADD_LEFT_SHIFT
+    twice_max = 2.0 * max(in_scales)
+    common = twice_max / (1 << ADD_LEFT_SHIFT)
+    _requant(layer, [common / s_out] + [s / twice_max for s in in_scales],
+             "output 2max / (2^L s_out), then inputs s_i / 2max")
+
+
+def _window_counts(layer: Layer, in_shape: list[int], out_shape: list[int]) -> np.ndarray:
+    """Input values inside each output position's window (padding is not counted), row-major over
+    the output's height x width; one entry when every window is full."""
+    per_axis = []
+    for d in range(2):
+        starts = np.arange(out_shape[2 + d]) * layer.stride[d] - layer.pads[d]
+        taps = starts[:, None] + np.arange(layer.kernel[d])[None, :] * layer.dilation[d]
+        per_axis.append(((taps >= 0) & (taps < in_shape[2 + d])).sum(axis=1))
+    counts = np.outer(per_axis[0], per_axis[1]).reshape(-1)
+    return counts[:1] if np.all(counts == counts[0]) else counts
+
+
 def _window_layer(layer: Layer, node: onnx.NodeProto, ctx: _Context, in_t: str, out_t: str) -> None:
     in_shape, out_shape = ctx.shape(in_t), ctx.shape(out_t)
     if len(in_shape) != 4:
@@ -334,16 +359,22 @@ def _build_layer(index: int, step: int, node: onnx.NodeProto, out_t: str, ctx: _
     layer = Layer(index=index, name=node.name, op_type=node.op_type, kind=kind, step=step,
                   inputs=[ctx.tensor_index[n] for n in in_names], output=ctx.tensor_index[out_t])
     s_out = ctx.scale(out_t)
+    if kind in ("AVERAGE_POOL", "GLOBAL_AVERAGE_POOL", "MAX_POOL", "GLOBAL_MAX_POOL"):
+        _window_layer(layer, node, ctx, in_names[0], out_t)
     if kind in ("CONV", "FULLY_CONNECTED"):
         _weighted_layer(layer, node, ctx, in_names[0], out_t)
+    elif kind == "ADD":
+        _add_requant(layer, [ctx.scale(n) for n in in_names], s_out)
     elif kind == "MUL":
-        _requant(layer, [ctx.scale(in_names[0]) * ctx.scale(in_names[1]) / s_out], "input scales product / output scale")
+        _requant(layer, [ctx.scale(in_names[0]) * ctx.scale(in_names[1]) / s_out], "s_a x s_b / s_out")
+    elif kind in ("AVERAGE_POOL", "GLOBAL_AVERAGE_POOL"):
+        counts = _window_counts(layer, ctx.shape(in_names[0]), ctx.shape(out_t))
+        _requant(layer, ctx.scale(in_names[0]) / (s_out * counts.astype(np.float64)),
+                 "s_in / (s_out x values in the window), per output position")
     elif kind in PASS_THROUGH_KINDS and ctx.scales[in_names[0]] == ctx.scales[out_t]:
         pass    # same quantizer in and out: the kernel moves bytes, nothing to rescale
     else:
-        _requant(layer, [ctx.scale(n) / s_out for n in in_names], "input scale / output scale, per input")
-    if kind in ("AVERAGE_POOL", "GLOBAL_AVERAGE_POOL", "MAX_POOL", "GLOBAL_MAX_POOL"):
-        _window_layer(layer, node, ctx, in_names[0], out_t)
+        _requant(layer, [ctx.scale(n) / s_out for n in in_names], "s_in / s_out, per input")
     if kind == "CONCAT":
         layer.axis = int(ops.attr(node, "axis", 0)) % len(ctx.shape(out_t))
     if kind == "CLAMP":

@@ -42,7 +42,7 @@ def _layer(layer) -> dict:
     return {"index": layer.index, "name": layer.name, "op_type": layer.op_type, "kind": layer.kind,
             "step": layer.step, "inputs": layer.inputs, "output": layer.output, "kernel": layer.kernel,
             "stride": layer.stride, "pads": layer.pads, "dilation": layer.dilation, "groups": layer.groups,
-            "axis": layer.axis, "act_min": layer.act_min, "act_max": layer.act_max,
+            "axis": layer.axis, "left_shift": layer.left_shift, "act_min": layer.act_min, "act_max": layer.act_max,
             "fused_activation": layer.fused_activation, "weights": _name_of(layer.weights),
             "bias": _name_of(layer.bias), "multipliers": _name_of(layer.multipliers),
             "shifts": _name_of(layer.shifts)}
