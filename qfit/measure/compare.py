@@ -94,26 +94,20 @@ def round_db(value: float) -> float:
 
 # ---- exact binomial test and the drop's interval ----------------------------------------------
 
-def _binom_cdf(k: int, n: int, p: float) -> float:
-    """P(X <= k) for X ~ Binomial(n, p), summed exactly in log space."""
-    if k < 0:
-        return 0.0
-    if k >= n:
-        return 1.0
-    if p <= 0:
-        return 1.0
-    if p >= 1:
-        return 0.0
-    logs = [math.lgamma(n + 1) - math.lgamma(i + 1) - math.lgamma(n - i + 1)
-            + i * math.log(p) + (n - i) * math.log1p(-p) for i in range(k + 1)]
-    top = max(logs)
-    return min(1.0, math.exp(top) * sum(math.exp(v - top) for v in logs))
-
-
 def binomial_test_above(successes: int, trials: int, rate: float) -> float:
     """One-sided exact binomial test: P(X >= successes) for X ~ Binomial(trials, rate), the p-value
-    of "the success rate is above `rate`"."""
-    return max(0.0, 1.0 - _binom_cdf(successes - 1, trials, rate))
+    of "the success rate is above `rate`"; the upper tail is summed itself (in log space), so a
+    p-value far below 1e-16 does not vanish into 1 - CDF."""
+    if successes <= 0:
+        return 1.0
+    if successes > trials or rate <= 0:
+        return 0.0
+    if rate >= 1:
+        return 1.0
+    logs = [math.lgamma(trials + 1) - math.lgamma(i + 1) - math.lgamma(trials - i + 1)
+            + i * math.log(rate) + (trials - i) * math.log1p(-rate) for i in range(successes, trials + 1)]
+    top = max(logs)
+    return min(1.0, math.exp(top) * sum(math.exp(v - top) for v in logs))
 
 
 Z_95 = 1.959963984540054  # the 97.5 % point of the standard normal
