@@ -150,45 +150,111 @@ def requantize(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray, zero_point: i
 
 
 class Requantizer:
-    """`requantize` with its per-channel constants prepared once, for the evaluation's hot loop.
+    """`requantize` (with an optional per-channel bias added to the accumulator first) with its
+    constants prepared once, for the evaluation's hot loop.
 
-    Same integers as `requantize` (tests/test_integer_fixed_point.py checks it), in fewer passes over
-    the accumulator: when no channel's factor is >= 1 (no left shift; the usual case) the double
-    rounding is floor((acc*M0 + 2^30) / 2^31), then the rounding shift; the single rounding is one
-    rounding shift of acc*M0. `m0`, `shift` and `zero_point` broadcast against the accumulator.
+    Same integers as `requantize(acc + bias, ...)` (tests/test_integer_fixed_point.py checks it), in
+    fewer passes over the data, cache-sized block by block. With x = acc * M0 and no left shift (every
+    factor < 1, the usual case), nested floors give
+      double:  floor((floor((x + K) / 2^31) + [x >= T]) / 2^r),  K = bias*M0 + 2^30 + (2^(r-1) - 1) 2^31,
+               T = -2^30 - bias*M0 (the sign test of the doubling high multiply's result; T = +inf
+               where r = 0, so no rounding term is added)
+      single:  floor((x + K + [x >= T]) / 2^R),  R = 31 - shift, K = bias*M0 + 2^(R-1) - 1, T = -bias*M0
+    Both are exact in int64: |acc + bias| < 2^31 and M0 < 2^31. The accumulator may be float32 or
+    float64 holding exact integers (a float sum of int8 products): the multiply casts it.
     """
 
-    def __init__(self, m0, shift, zero_point, rounding: str, low: int, high: int):
+    BLOCK_VALUES = 1 << 16  # values per block: the int64 temporaries stay in the CPU cache
+
+    def __init__(self, m0, shift, zero_point, rounding: str, low: int, high: int, bias=None):
         if rounding not in _MULTIPLY:
             raise ValueError(f"unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
         self.m0 = np.asarray(m0, dtype=np.int64)
         self.shift = np.asarray(shift, dtype=np.int64)
+        self.bias = np.zeros((), np.int64) if bias is None else np.asarray(bias, dtype=np.int64)
         self.zero_point = np.asarray(zero_point, dtype=np.int64)
         self.rounding, self.low, self.high = rounding, int(low), int(high)
+        bias_m0 = self.bias * self.m0
+        never = np.iinfo(np.int64).max
         if rounding == "double":
             left, right = _left_and_right(self.shift)
             self.fast = not np.any(left)
+            half = np.where(right > 0, (np.int64(1) << right) >> 1, 0)
+            self.offset = bias_m0 + (1 << 30) + np.where(right > 0, half - 1, 0) * (np.int64(1) << 31)
+            self.threshold = np.where(right > 0, -(1 << 30) - bias_m0, never)
+            self.right = right
         else:
             right, left = _single_exponents(self.shift)
             self.fast = rounding == "single" and not np.any(left) and bool(np.all(right > 0))
-        self.right = right
-        self.nudge = np.where(right > 0, ((np.int64(1) << right) >> 1) - 1, 0)
-        self.rounds = (right > 0).astype(np.int64)
-        self.all_round = bool(np.all(self.rounds))
+            self.offset = bias_m0 + ((np.int64(1) << right) >> 1) - 1
+            self.threshold = -bias_m0
+            self.right = right
+        # clamp before adding the zero point, so adding it and narrowing to int32 is one pass
+        self.low_centred = self.low - self.zero_point
+        self.high_centred = self.high - self.zero_point
+        self.threshold, self.offset, self.right = (np.asarray(v, np.int64) for v in
+                                                   (self.threshold, self.offset, self.right))
+        self._by_rank: dict[int, list[np.ndarray]] = {}
 
     def __call__(self, acc: np.ndarray) -> np.ndarray:
-        """int32 output integers for an int64 (or smaller) accumulator array (not modified)."""
+        """int32 output integers for an accumulator array (not modified)."""
         if not self.fast:
-            return requantize(acc, self.m0, self.shift, self.zero_point, self.rounding,
+            exact = np.asarray(acc).astype(np.int64) + self.bias
+            return requantize(exact, self.m0, self.shift, self.zero_point, self.rounding,
                               self.low, self.high).astype(np.int32)
-        x = np.multiply(acc, self.m0, dtype=np.int64)
+        acc = np.asarray(acc)
+        out = np.empty(acc.shape, np.int32)
+        if acc.size == 0:
+            return out
+        constants = self._constants(acc.ndim)
+        if acc.ndim == 0:
+            return self._block(acc, out, constants)
+        # Axes after the last one along which a constant varies merge into one long axis, so numpy's
+        # inner loops run over it with scalar constants; then blocks of about BLOCK_VALUES values.
+        varying = [a for c in constants for a in range(acc.ndim) if c.shape[a] > 1]
+        last = max(varying, default=-1)
+        if last < acc.ndim - 2:
+            merged = acc.shape[:last + 1] + (-1,)
+            acc, out_view = acc.reshape(merged), out.reshape(merged)
+            constants = [c.reshape(c.shape[:last + 1] + (1,)) for c in constants]
+        else:
+            out_view = out
+        shape, axis, inner = acc.shape, acc.ndim - 1, 1
+        while axis > 0 and inner * shape[axis] <= self.BLOCK_VALUES:
+            inner *= shape[axis]
+            axis -= 1
+        step = max(1, self.BLOCK_VALUES // inner)
+        for prefix in np.ndindex(*shape[:axis]):
+            for start in range(0, shape[axis], step):
+                index = prefix + (slice(start, start + step),)
+                self._block(acc[index], out_view[index], [c[_constant_index(c, prefix, index[-1])]
+                                                          for c in constants])
+        return out
+
+    def _constants(self, ndim: int) -> list[np.ndarray]:
+        """The per-channel constants with `ndim` axes (leading ones), cached per rank."""
+        if ndim not in self._by_rank:
+            self._by_rank[ndim] = [c.reshape((1,) * (ndim - c.ndim) + c.shape) if c.ndim <= ndim else c
+                                   for c in (self.m0, self.threshold, self.offset, self.right,
+                                             self.low_centred, self.high_centred, self.zero_point)]
+        return self._by_rank[ndim]
+
+    def _block(self, acc: np.ndarray, out: np.ndarray, constants: list[np.ndarray]) -> np.ndarray:
+        m0, threshold, offset, right, low, high, zero_point = constants
+        x = np.multiply(acc, m0, dtype=np.int64, casting="unsafe")
+        rounds_up = x >= threshold
+        x += offset
         if self.rounding == "double":
-            x += 1 << 30
             x >>= 31
-        non_negative = x >= 0
-        x += self.nudge
-        x += non_negative if self.all_round else non_negative * self.rounds
-        x >>= self.right
-        x += self.zero_point
-        np.clip(x, self.low, self.high, out=x)
-        return x.astype(np.int32)
+        x += rounds_up
+        x >>= right
+        np.clip(x, low, high, out=x)
+        np.add(x, zero_point, out=out, casting="unsafe")
+        return out
+
+
+def _constant_index(constant: np.ndarray, prefix: tuple, block: slice) -> tuple:
+    """The slice of a broadcast constant that lines up with the block acc[prefix + (block,)]."""
+    axis = len(prefix)
+    head = tuple(i if constant.shape[a] > 1 else 0 for a, i in enumerate(prefix))
+    return head + ((block if constant.shape[axis] > 1 else slice(None)),)
