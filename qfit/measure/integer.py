@@ -149,14 +149,14 @@ def _clamp_bounds(node: NodeProto, inits: dict) -> tuple[float, float] | None:
     """Real bounds of a ReLU or a Clip with constant bounds (None when they are not constants)."""
     if node.op_type == "Relu":
         return 0.0, float("inf")
-    lo, hi = attr(node, "min", float("-inf")), attr(node, "max", float("inf"))
-    for index, default in ((1, lo), (2, hi)):
+    bounds = [attr(node, "min", float("-inf")), attr(node, "max", float("inf"))]
+    for k, index in enumerate((1, 2)):
         if len(node.input) > index and node.input[index]:
-            if node.input[index] not in inits:
+            value = inits.get(node.input[index])
+            if value is None or value.size != 1:
                 return None
-    lo = float(inits[node.input[1]]) if len(node.input) > 1 and node.input[1] else float(lo)
-    hi = float(inits[node.input[2]]) if len(node.input) > 2 and node.input[2] else float(hi)
-    return lo, hi
+            bounds[k] = value.reshape(-1)[0]
+    return float(bounds[0]), float(bounds[1])
 
 
 def _narrow(grid: Grid, bounds: tuple[float, float]) -> Grid:
@@ -301,8 +301,8 @@ class IntegerProgram:
         constants = {i: float_constants[name] for i, name in enumerate(node.input) if name in float_constants}
         reads = [name for i, name in enumerate(node.input) if name and i not in constants]
         reads = list(dict.fromkeys(reads))
-        types = {i: self.elem_types.get(name, TensorProto.FLOAT) for i, name in enumerate(node.input)}
-        out_types = [self.elem_types.get(name, TensorProto.FLOAT) for name in node.output if name]
+        types = {i: self.elem_types.get(name) or TensorProto.FLOAT for i, name in enumerate(node.input)}
+        out_types = [self.elem_types.get(name) or TensorProto.FLOAT for name in node.output]
         run = compile_node(node, constants, self.arithmetic.opsets, types, out_types)
         return _Step("float", node, reads, [o for o in node.output if o], run_float=run)
 
