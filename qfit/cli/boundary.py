@@ -173,13 +173,13 @@ def check_check_outputs(args: argparse.Namespace) -> None:
     data_folders = [getattr(args, "calib", None), getattr(args, "eval", None)]
     files.check_output_folder(args.out, "--out", inputs=data_folders)
     out_real = os.path.realpath(args.out)
-    for flag in ("model", "labels", "preprocess"):
+    for flag in ("model", "labels", "preprocess", "class_order"):
         given = getattr(args, flag, None)
         if not given:
             continue
         real = os.path.realpath(given)
         name = os.path.basename(real)
         if os.path.dirname(real) == out_real and (name in REPORT_NAMES or name.endswith(MODEL_SUFFIX)):
-            what = "model" if flag == "model" else f"file {given} (--{flag})"
+            what = "model" if flag == "model" else f"file {given} (--{flag.replace('_', '-')})"
             raise QfitError(f"--out: writing {os.path.join(args.out, name)} would overwrite the input "
                             f"{what if flag != 'model' else 'model ' + given}")

@@ -610,8 +610,7 @@ def read_class_order(spec: str) -> list[str]:
     if os.path.isfile(spec):
         where = f"--class-order: {spec}"
         try:
-            with open(spec, "rb") as f:
-                text = f.read().decode("utf-8-sig")
+            text = read_regular_file(spec, MAX_SMALL_FILE_BYTES, where).decode("utf-8-sig")
         except OSError as e:
             raise QfitError(f"{where}: cannot read ({e.strerror or e})") from None
         except UnicodeDecodeError as e:

@@ -17,7 +17,7 @@ from onnx import TensorProto, helper, numpy_helper, shape_inference
 
 from qfit import ops
 from qfit.errors import QfitError
-from qfit.graph import rewrite
+from qfit.graph import rewrite, sanity
 from qfit.graph.model import LoadedModel  # noqa: F401  (the loader's result type, importable from here)
 
 MIN_OPSET = 13
@@ -216,7 +216,9 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     work = onnx.ModelProto()
     work.CopyFrom(model)
     notes: list[str] = []
+    sanity.accept_old_ir(work)
     _check(work, path)
+    sanity.check_structure(work, path)
     _check_readable(work, path)
     original_opset = _default_opset(work)
     _fix_input_shapes(work, dict(input_shapes or {}), path)
@@ -253,6 +255,7 @@ def prepare_model(model: onnx.ModelProto, path: str = "<memory>",
     for name, arr in constants.items():
         shapes[name] = tuple(arr.shape)
         elem_types[name] = helper.np_dtype_to_tensor_dtype(arr.dtype)
+    sanity.check_sizes_and_note(shapes, constants, notes, path)
     missing = [o for node in work.graph.node for o in node.output if o and o not in shapes]
     if missing:
         raise QfitError(f"model: {path}: cannot determine a static shape for tensor '{missing[0]}' "

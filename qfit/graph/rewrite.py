@@ -53,14 +53,14 @@ def drop_passthrough(graph: onnx.GraphProto) -> int:
             continue
         src, dst = node.input[0], node.output[0]
         if dst in outputs:
+            if src in {i.name for i in graph.input} | {i.name for i in graph.initializer}:
+                continue  # an input wired straight to an output: keep the Identity (renaming makes a loop)
             # keep the graph output's name: rename the producer's output instead
             for other in graph.node:
                 for i, name in enumerate(other.output):
                     if name == src:
                         other.output[i] = dst
             _rename_input(graph, src, dst)
-            if src in {i.name for i in graph.input} | {i.name for i in graph.initializer}:
-                continue  # an input wired straight to an output: keep the Identity
         else:
             _rename_input(graph, dst, src)
         graph.node.remove(node)

@@ -1,9 +1,15 @@
 """BudgetOptions: the limits and conventions every memory figure is computed under."""
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 from qfit.errors import QfitError
+
+
+LABELS = {"flash_limit_bytes": "the flash limit (--flash)", "sram_limit_bytes": "the SRAM limit (--sram)",
+          "cycles_per_mac": "cycles per MAC (--cycles-per-mac)", "clock_mhz": "the clock (--clock-mhz)",
+          "energy_per_mac_pj": "energy per MAC (--energy-per-mac-pj)"}
 
 
 @dataclass
@@ -24,10 +30,11 @@ class BudgetOptions:
     what_if: bool | None = None            # None: only when something does not fit
 
     def validate(self) -> None:
+        # messages name the figure as a user knows it (the CLI option), never the field
         for name in ("flash_limit_bytes", "sram_limit_bytes"):
             value = getattr(self, name)
-            if value is not None and value <= 0:
-                raise QfitError(f"budget: {name} must be positive, got {value}")
+            if value is not None and not value > 0:
+                raise QfitError(f"budget: {LABELS[name]} must be more than 0 bytes, got {value}")
         if self.flash_reserve_bytes < 0 or self.meta_bytes_per_layer < 0:
             raise QfitError("budget: flash reserve and per-layer metadata bytes cannot be negative")
         if self.alignment < 1 or self.alignment & (self.alignment - 1):
@@ -36,5 +43,5 @@ class BudgetOptions:
             raise QfitError(f"budget: order time limit must be >= 0 s, got {self.order_time_limit_s}")
         for name in ("cycles_per_mac", "clock_mhz", "energy_per_mac_pj"):
             value = getattr(self, name)
-            if value is not None and value <= 0:
-                raise QfitError(f"budget: {name} must be positive, got {value}")
+            if value is not None and not (value > 0 and math.isfinite(value)):
+                raise QfitError(f"budget: {LABELS[name]} must be a positive finite number, got {value}")

@@ -209,7 +209,8 @@ def sram_section(memory: MemoryModel, live: schedule.Liveness, options: BudgetOp
         "live_at_peak": at_peak,
         "required_bytes": required_bytes,
         "limit_bytes": limit,
-        "fits": None if limit is None else required_bytes <= limit,
+        # a peak of 0 or less can only come from a broken count: never let it read as "fits"
+        "fits": None if limit is None else 0 < required_bytes <= limit,
         "headroom_bytes": None if limit is None else limit - required_bytes,
         "order_used": "best" if live.order != problem.default_order else "default",
         "conventions": {"views": options.views, "inplace": options.inplace, "scratch": options.scratch,
