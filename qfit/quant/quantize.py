@@ -22,6 +22,7 @@ from onnx import TensorProto, helper, numpy_helper
 from qfit.graph.load import LoadedModel
 from qfit.quant.observe import TensorStats, range_for
 from qfit.quant.plan import Plan
+from qfit.quant.scale_floor import floor_activation_scale, floor_weight_scale
 
 INT_RANGE = {8: (-128, 127), 16: (-32768, 32767)}
 WEIGHT_QMAX = {8: 127, 16: 32767}
@@ -56,11 +57,11 @@ def activation_params(lo: float, hi: float, bits: int = 8, symmetric: bool = Fal
     if symmetric or bits > 8:
         bound = max(-lo, hi)
         scale = bound / qmax if bound > 0 else 1.0
-        return float(np.float32(scale)), 0
+        return float(np.float32(floor_activation_scale(scale))), 0
     scale = (hi - lo) / (qmax - qmin)
     if not scale > 0 or not np.isfinite(scale):
         return 1.0, 0
-    scale = float(np.float32(scale))
+    scale = float(np.float32(floor_activation_scale(scale)))
     zero_point = int(np.clip(np.round(qmin - lo / scale), qmin, qmax))
     return scale, zero_point
 
@@ -71,12 +72,12 @@ def quantize_weight(w: np.ndarray, axis: int | None, bits: int = 8) -> tuple[np.
     w = np.asarray(w, dtype=np.float32)
     if axis is None:
         amax = np.array(np.abs(w).max() if w.size else 0.0, dtype=np.float32)
-        scale = np.where(amax > 0, amax / qmax, 1.0).astype(np.float32)
+        scale = floor_weight_scale(np.where(amax > 0, amax / qmax, 1.0))
         q = np.clip(np.round(w / scale), -qmax, qmax)
         return q.astype(INT_TYPE[bits][0]), scale.reshape(())
     moved = np.moveaxis(w, axis, 0).reshape(w.shape[axis], -1)
     amax = np.abs(moved).max(axis=1) if moved.size else np.zeros(w.shape[axis], np.float32)
-    scale = np.where(amax > 0, amax / qmax, 1.0).astype(np.float32)
+    scale = floor_weight_scale(np.where(amax > 0, amax / qmax, 1.0))
     shape = [1] * w.ndim
     shape[axis] = -1
     q = np.clip(np.round(w / scale.reshape(shape)), -qmax, qmax)
