@@ -11,7 +11,9 @@ from functools import cached_property
 
 import numpy as np
 import onnx
+from onnx import TensorProto, numpy_helper
 
+from qfit import ops
 from qfit.ops import numel
 
 
@@ -120,3 +122,42 @@ class LoadedModel:
 
     def is_constant(self, name: str) -> bool:
         return name in self.constants
+
+
+def with_constants(loaded: LoadedModel, values: dict[str, np.ndarray] | None = None,
+                   new_biases: dict[str, tuple[str, np.ndarray]] | None = None) -> LoadedModel:
+    """A copy of `loaded` with initializers replaced (`values`) and bias inputs added to nodes
+    (`new_biases`: node -> (new initializer name, values), at the input the registry names as the
+    node's bias). The input object is not changed."""
+    values = dict(values or {})
+    new_biases = dict(new_biases or {})
+    model = onnx.ModelProto()
+    model.CopyFrom(loaded.model)
+    graph = model.graph
+    for init in graph.initializer:
+        if init.name in values:
+            init.CopyFrom(numpy_helper.from_array(np.asarray(values[init.name], np.float32), init.name))
+    for node in graph.node:
+        if node.name in new_biases:
+            name, array = new_biases[node.name]
+            bias_index = ops.of(node).bias
+            if bias_index is None:
+                raise ValueError(f"{node.op_type} node {node.name} has no bias input")
+            graph.initializer.append(numpy_helper.from_array(np.asarray(array, np.float32), name))
+            while len(node.input) < bias_index:
+                node.input.append("")
+            if len(node.input) == bias_index:
+                node.input.append(name)
+            else:
+                node.input[bias_index] = name
+    constants = dict(loaded.constants)
+    shapes = dict(loaded.shapes)
+    elem_types = dict(loaded.elem_types)
+    for name, array in values.items():
+        constants[name] = np.asarray(array, np.float32)
+    for name, array in new_biases.values():
+        constants[name] = np.asarray(array, np.float32)
+        shapes[name] = tuple(np.shape(array))
+        elem_types[name] = TensorProto.FLOAT
+    return LoadedModel(path=loaded.path, model=model, shapes=shapes, elem_types=elem_types,
+                       constants=constants, notes=list(loaded.notes), original_opset=loaded.original_opset)

@@ -38,53 +38,15 @@ from dataclasses import dataclass, field
 import numpy as np
 import onnx
 import onnxruntime as ort
-from onnx import TensorProto, numpy_helper
 
 from qfit import ops
-from qfit.graph.model import FreshNames, LoadedModel
+from qfit.graph.model import FreshNames, LoadedModel, with_constants
 from qfit.quant.plan import Plan
 from qfit.quant.quantize import QuantizedModel, quantize_weight
 from qfit.runtime.sessions import Runner
 
 SCALE_TOLERANCE = 1e-6   # stop sweeping when no scale moves by more than this (relative)
 MAX_SWEEPS = 200
-
-
-# ---- graph helpers --------------------------------------------------------------------------------
-
-def with_constants(loaded: LoadedModel, values: dict[str, np.ndarray] | None = None,
-                   new_biases: dict[str, tuple[str, np.ndarray]] | None = None) -> LoadedModel:
-    """A copy of `loaded` with initializers replaced (`values`) and bias inputs added to nodes
-    (`new_biases`: node -> (new initializer name, values)). The input object is not changed."""
-    values = dict(values or {})
-    new_biases = dict(new_biases or {})
-    model = onnx.ModelProto()
-    model.CopyFrom(loaded.model)
-    graph = model.graph
-    for init in graph.initializer:
-        if init.name in values:
-            init.CopyFrom(numpy_helper.from_array(np.asarray(values[init.name], np.float32), init.name))
-    for node in graph.node:
-        if node.name in new_biases:
-            name, array = new_biases[node.name]
-            graph.initializer.append(numpy_helper.from_array(np.asarray(array, np.float32), name))
-            while len(node.input) < 2:
-                node.input.append("")
-            if len(node.input) == 2:
-                node.input.append(name)
-            else:
-                node.input[2] = name
-    constants = dict(loaded.constants)
-    shapes = dict(loaded.shapes)
-    elem_types = dict(loaded.elem_types)
-    for name, array in values.items():
-        constants[name] = np.asarray(array, np.float32)
-    for name, array in new_biases.values():
-        constants[name] = np.asarray(array, np.float32)
-        shapes[name] = tuple(np.shape(array))
-        elem_types[name] = TensorProto.FLOAT
-    return LoadedModel(path=loaded.path, model=model, shapes=shapes, elem_types=elem_types,
-                       constants=constants, notes=list(loaded.notes), original_opset=loaded.original_opset)
 
 
 def _fresh_names(loaded: LoadedModel) -> FreshNames:
