@@ -77,7 +77,8 @@ def user_message(text: str) -> str:
     them and changes from run to run), capped in length with the cut marked."""
     text = _ADDRESS.sub("", text)
     if len(text) > MAX_MESSAGE_CHARS:
-        text = text[:MAX_MESSAGE_CHARS - 20] + f"... ({len(text)} characters)"
+        cut = f"... ({len(text)} characters)"
+        text = text[:MAX_MESSAGE_CHARS - len(cut)] + cut
     return text
 
 

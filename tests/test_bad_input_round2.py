@@ -1,0 +1,321 @@
+"""Bad input, round two (docs/bad-input.md, "Round two"): outputs that would destroy an input or a
+device, counts that could wrap around, options that are not numbers, degenerate and old models, reads
+that would never end, denormal weights. In process, through `qfit.cli.main`, with the refusal
+contract of tests/test_bad_input.py (exit 2, one stderr line, no traceback, --out untouched).
+The cases that need a real process (closed or full stdout, a FIFO) are in
+tests/test_bad_input_subprocess.py.
+"""
+from __future__ import annotations
+
+import json
+import os
+import stat
+from fractions import Fraction
+
+import numpy as np
+import onnx
+import pytest
+from onnx import TensorProto, helper, numpy_helper
+
+from qfit.cli import boundary
+from qfit import files, sizes
+from qfit.quant import scale_floor
+from test_bad_input import (SIZES, _keep_sigterm_handler, assert_refused, check_args, conv_model,  # noqa: F401
+                            npy_folder, run_qfit)
+
+
+@pytest.fixture
+def calib(tmp_path):
+    return npy_folder(tmp_path / "calib")
+
+
+@pytest.fixture
+def model(tmp_path):
+    return conv_model(folder=tmp_path)
+
+
+def file_bytes(path):
+    with open(path, "rb") as f:
+        return f.read()
+
+
+# ------------------------------------------------------------------------------ 1. outputs
+
+@pytest.mark.parametrize("flag", ["--json", "--html"])
+def test_bad_input_budget_output_is_the_model(tmp_path, capfd, model, flag):
+    before = file_bytes(model)
+    assert_refused(capfd, ["budget", model, *SIZES, flag, model], tmp_path / "none",
+                   f"{flag}: {model} is the input {model}; writing it would destroy the input")
+    assert file_bytes(model) == before
+
+
+def test_bad_input_budget_output_is_a_link_to_a_device(tmp_path, capfd, model):
+    # A link to /dev/null stands in for /dev/null itself: if the guard failed, the rename would
+    # replace the link in tmp_path, never the device node.
+    link = tmp_path / "null.json"
+    os.symlink("/dev/null", link)
+    assert_refused(capfd, ["budget", model, *SIZES, "--json", link], tmp_path / "none",
+                   f"--json: {link} exists and is not a regular file")
+    assert os.path.islink(link) and os.readlink(link) == "/dev/null"
+
+
+def test_bad_input_budget_output_is_a_fifo(tmp_path, capfd, model):
+    fifo = tmp_path / "report.html"
+    os.mkfifo(fifo)
+    assert_refused(capfd, ["budget", model, *SIZES, "--html", fifo], tmp_path / "none",
+                   f"--html: {fifo} exists and is not a regular file")
+    assert stat.S_ISFIFO(os.lstat(fifo).st_mode)
+
+
+def test_bad_input_budget_json_and_html_name_one_file(tmp_path, capfd, model):
+    same = tmp_path / "both"
+    assert_refused(capfd, ["budget", model, *SIZES, "--json", same, "--html", same], tmp_path / "none",
+                   f"--json and --html: both name {same}")
+
+
+def test_bad_input_check_out_inside_the_calibration_folder(tmp_path, capfd, model, calib):
+    out = os.path.join(calib, "out")
+    assert_refused(capfd, check_args(model, calib, out), calib, f"--out: {out} is inside the input folder {calib}")
+
+
+def test_bad_input_check_out_would_replace_the_preprocess_file(tmp_path, capfd, model, calib):
+    out = tmp_path / "out"
+    out.mkdir()
+    pre = out / "report.json"
+    pre.write_text("{}")
+    assert_refused(capfd, check_args(model, calib, out, "--preprocess", pre), out,
+                   f"would overwrite the input file {pre} (--preprocess)")
+
+
+def test_bad_input_every_output_gets_the_same_mode(tmp_path, capfd, model, calib):
+    """report.json of `qfit budget --json` used to keep mkstemp's 0600; every output now gets the
+    mode any new file gets under the umask (0644 under umask 022)."""
+    old = os.umask(0o022)
+    try:
+        code, _, err, _ = run_qfit(capfd, ["budget", model, *SIZES, "--json", tmp_path / "b.json",
+                                           "--html", tmp_path / "b.html"])
+        assert code == 0, err
+        code, _, err, _ = run_qfit(capfd, check_args(model, calib, tmp_path / "out"))
+        assert code in (0, 1), err
+    finally:
+        os.umask(old)
+    written = [tmp_path / "b.json", tmp_path / "b.html", *sorted((tmp_path / "out").iterdir())]
+    assert len(written) == 6
+    assert {stat.S_IMODE(os.stat(p).st_mode) for p in written} == {0o644}
+
+
+# ------------------------------------------------------------------------------ 2. counts
+
+def test_bad_input_element_counts_are_exact_integers():
+    # exact arithmetic: Python integers against numpy's int64 product, which wraps around
+    shape = (1, 4, 2 ** 31 - 1, 2 ** 31 - 1)
+    exact = 4 * (2 ** 31 - 1) ** 2
+    assert sizes.element_count(shape) == exact
+    assert exact > 2 ** 63  # beyond int64: numpy's product would have wrapped around
+    with pytest.raises(Exception, match="over qfit's ceiling of 4294967296"):
+        sizes.check_tensor_elements(shape, "t")
+
+
+def test_bad_input_dims_whose_product_wraps_int64_refused(tmp_path, capfd):
+    """Each dimension passes the per-dimension limit, their product does not fit int64: this gave a
+    negative peak and "Verdict: fits"."""
+    path = conv_model(input_dims=[1, 3, "H", "W"], folder=tmp_path, name="dyn.onnx")
+    assert_refused(capfd, ["budget", path, *SIZES, "--input-shape", "x=1x3x2147483647x2147483647"],
+                   tmp_path / "none", f"model: {path}: tensor", "over qfit's ceiling of 4294967296 (2**32) per tensor")
+
+
+# ------------------------------------------------------------------------------ 3. options and models
+
+@pytest.mark.parametrize("value", ["150", "-5", "0", "nan"])
+def test_bad_input_percentile_outside_0_100(tmp_path, capfd, model, calib, value):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--percentile", value), tmp_path / "out",
+                   "--percentile: must be")
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--seed", "-1"], "--seed: must be 0 or a positive whole number, got -1"),
+    (["--threads", "100000"], "--threads: must be between 0 (onnxruntime's default) and 256, got 100000"),
+    (["--scale", "1e-45"], "--scale: 1e-45 is too small to give inputs a range"),
+    (["--max-drop", "inf"], "--max-drop: must be a finite number, got inf"),
+    (["--threshold", "nan"], "--threshold: must be a finite number, got nan"),
+])
+def test_bad_input_check_numeric_option(tmp_path, capfd, model, calib, args, fragment):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out", fragment)
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--cycles-per-mac", "nan", "--clock-mhz", "100"], "--cycles-per-mac: must be a finite number, got nan"),
+    (["--cycles-per-mac", "1", "--clock-mhz", "inf"], "--clock-mhz: must be a finite number, got inf"),
+    (["--energy-per-mac-pj", "inf"], "--energy-per-mac-pj: must be a finite number, got inf"),
+    (["--energy-per-mac-pj", "-1"], "--energy-per-mac-pj: must be more than 0, got -1.0"),
+])
+def test_bad_input_budget_numeric_option(tmp_path, capfd, model, args, fragment):
+    assert_refused(capfd, ["budget", model, *SIZES, "--json", tmp_path / "b.json", *args], tmp_path / "b.json",
+                   fragment)
+
+
+def test_bad_input_zero_sram_names_the_option_not_a_field(tmp_path, capfd, model):
+    message = assert_refused(capfd, ["budget", model, "--flash", "1MiB", "--sram", "0"], tmp_path / "none",
+                             "--sram: must be more than 0 bytes, got '0'")
+    assert "_bytes" not in message
+
+
+def test_bad_input_library_budget_messages_name_no_field():
+    from qfit.errors import QfitError
+    from qfit.memory.options import BudgetOptions
+    for fields in ({"sram_limit_bytes": 0}, {"flash_limit_bytes": -1}, {"clock_mhz": float("nan")}):
+        with pytest.raises(QfitError) as caught:
+            BudgetOptions(**fields).validate()
+        assert not any(name in str(caught.value) for name in fields), caught.value
+
+
+def test_bad_input_report_refuses_nan_before_json():
+    from qfit.errors import QfitError
+    with pytest.raises(QfitError, match=r"report\.accuracy\.drop_pt: the figure is nan"):
+        files.json_bytes({"accuracy": {"drop_pt": float("nan")}})
+
+
+def test_bad_input_messages_are_capped_and_hold_no_address():
+    text = "model: m.onnx: <onnx.Foo object at 0x7f3a2b1c9d80> " + "n," * 10000
+    shown = boundary.user_message(text)
+    assert "0x7f3a2b1c9d80" not in shown
+    assert len(shown) <= boundary.MAX_MESSAGE_CHARS
+
+
+def test_bad_input_long_value_gives_a_capped_line(tmp_path, capfd, model, calib):
+    message = assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--input-shape", "x" * 20000),
+                             tmp_path / "out", "--input-shape: cannot read")
+    assert len(message) <= len("qfit: error: ") + boundary.MAX_MESSAGE_CHARS
+
+
+def _save(model, path):
+    onnx.save(model, str(path))
+    return str(path)
+
+
+def test_bad_input_model_with_zero_outputs(tmp_path, capfd, calib):
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 3, 8, 8])
+    graph = helper.make_graph([helper.make_node("Relu", ["x"], ["y"])], "g", [x], [])
+    path = _save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), tmp_path / "zero.onnx")
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: has no outputs")
+
+
+def test_bad_input_identity_only_model(tmp_path, capfd, calib):
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 3, 8, 8])
+    y = helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 3, 8, 8])
+    graph = helper.make_graph([helper.make_node("Identity", ["x"], ["y"])], "g", [x], [y])
+    path = _save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), tmp_path / "identity.onnx")
+    for args in (check_args(path, calib, tmp_path / "out"), ["budget", path, *SIZES]):
+        assert_refused(capfd, args, tmp_path / "out", f"model: {path}: has only pass-through operators (Identity)")
+
+
+def test_identity_from_an_input_to_an_output_is_kept_without_a_loop():
+    """Next to real work, an input copied straight to an output keeps its Identity (renaming it
+    away made the Identity read its own output)."""
+    from qfit.graph import rewrite
+    x = helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 4])
+    graph = helper.make_graph([helper.make_node("Identity", ["x"], ["copy"]), helper.make_node("Relu", ["x"], ["y"])],
+                              "g", [x], [helper.make_tensor_value_info("copy", TensorProto.FLOAT, [1, 4]),
+                                         helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 4])])
+    rewrite.drop_passthrough(graph)
+    assert [(n.op_type, list(n.input), list(n.output)) for n in graph.node] == [
+        ("Identity", ["x"], ["copy"]), ("Relu", ["x"], ["y"])]
+
+
+def test_bad_input_opset_newer_than_onnxruntime_runs(tmp_path, capfd, calib):
+    path = conv_model(folder=tmp_path, name="future.onnx")
+    future = onnx.load(path)
+    future.opset_import[0].version = 40
+    _save(future, path)
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"model: {path}: opset 40 is newer than onnxruntime", "re-export at opset")
+
+
+def test_bad_input_opset7_ir3_model_with_initializers_outside_the_inputs_accepted(tmp_path, capfd, calib):
+    path = conv_model(folder=tmp_path, name="old.onnx", opset=7)
+    old = onnx.load(path)
+    old.ir_version = 3
+    _save(old, path)
+    with pytest.raises(onnx.checker.ValidationError, match="not in graph input"):
+        onnx.checker.check_model(old)  # the file as such fails the checker
+    code, _, err, _ = run_qfit(capfd, check_args(path, calib, tmp_path / "out"))
+    assert code == 0, err
+    report = json.loads((tmp_path / "out" / "report.json").read_text())
+    assert "opset converted from 7 to 21" in report["model"]["notes"]
+
+
+def test_bad_input_class_folder_name_not_utf8(tmp_path, capfd, model, calib):
+    """A class folder whose name is not UTF-8 reaches Python as surrogate escapes; the reports
+    spell the byte as \\xff instead of failing to encode."""
+    root = os.fsencode(str(tmp_path / "eval"))
+    for name in (b"bolt", b"nut\xff", b"pin", b"washer"):
+        npy_folder(os.fsdecode(os.path.join(root, name)), count=2, seed=len(name))
+    out = tmp_path / "out"
+    code, stdout, err, _ = run_qfit(capfd, check_args(model, calib, out, "--eval", os.fsdecode(root)))
+    assert code in (0, 1), err
+    assert "Traceback" not in err
+    report = json.loads((out / "report.json").read_text(encoding="utf-8"))
+    assert "nut\\xff" in report["evaluation"]["class_names"]
+    (out / "report.md").read_text(encoding="utf-8")  # valid UTF-8 throughout
+    (out / "report.html").read_text(encoding="utf-8")
+
+
+def test_bad_input_report_md_escapes_html_in_node_names(tmp_path, capfd, calib):
+    path = conv_model(folder=tmp_path, name="named.onnx")
+    named = onnx.load(path)
+    named.graph.node[0].name = "<script>alert(1)</script>"
+    _save(named, path)
+    code, _, err, _ = run_qfit(capfd, check_args(path, calib, tmp_path / "out"))
+    assert code in (0, 1), err
+    text = (tmp_path / "out" / "report.md").read_text()
+    assert "<script>" not in text
+    assert "&lt;script&gt;" in text
+
+
+# ------------------------------------------------------------------------------ 4. reads
+
+@pytest.mark.parametrize("flag", ["--labels", "--preprocess"])
+def test_bad_input_endless_stream_as_a_small_input_file(tmp_path, capfd, model, calib, flag):
+    extra = [flag, "/dev/zero"] + (["--eval", calib] if flag == "--labels" else [])
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *extra), tmp_path / "out",
+                   "/dev/zero: not a regular file")
+
+
+def test_bad_input_oversized_labels_file_refused_after_the_cap(tmp_path, capfd, model, calib):
+    big = tmp_path / "labels.csv"
+    with open(big, "wb") as f:
+        f.truncate(files.MAX_SMALL_FILE_BYTES + 1)  # sparse: no disk used
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", calib, "--labels", big),
+                   tmp_path / "out", f"labels CSV {big}: larger than 64 MiB")
+
+
+# ------------------------------------------------------------------------------ 5. denormal weights
+
+def test_bad_input_denormal_weight_channel_gets_the_minimum_scale(tmp_path, capfd, calib):
+    path = conv_model(folder=tmp_path, name="denormal.onnx")
+    m = onnx.load(path)
+    w = numpy_helper.to_array(m.graph.initializer[0]).copy()
+    w[1] = np.float32(1e-41)  # a denormal float32
+    b = np.array([0.1, 0.2, -0.1, 0.05], np.float32)
+    m.graph.initializer[0].CopyFrom(numpy_helper.from_array(w, "w"))
+    m.graph.initializer[1].CopyFrom(numpy_helper.from_array(b, "b"))
+    _save(m, path)
+    code, _, err, _ = run_qfit(capfd, check_args(path, calib, tmp_path / "out"))
+    assert code in (0, 1), err
+    report = json.loads((tmp_path / "out" / "report.json").read_text())
+    assert any("denormal weight values in w" in note for note in report["model"]["notes"])
+    q = onnx.load(str(tmp_path / "out" / "denormal_int8.onnx"))
+    inits = {i.name: numpy_helper.to_array(i) for i in q.graph.initializer}
+    dq = {n.input[0]: n.input[1] for n in q.graph.node if n.op_type == "DequantizeLinear"}
+    w_scale = inits[dq[next(k for k in dq if k.startswith("w_"))]]
+    b_scale = inits[dq[next(k for k in dq if k.startswith("b_"))]]
+    tiny = np.finfo(np.float32).tiny
+    assert np.all(w_scale >= scale_floor.MIN_WEIGHT_SCALE) and np.all(w_scale >= tiny)
+    assert np.all(b_scale >= tiny), b_scale  # positive normal float32: no runtime flushes it to 0
+    # bias scale = input scale x weight scale, exactly as a float32 product (ONNX QLinearConv
+    # convention, common practice): find the input scale that makes every channel agree
+    conv = next(n for n in q.graph.node if n.op_type == "Conv")
+    x_dq = next(n for n in q.graph.node if n.op_type == "DequantizeLinear" and n.output[0] == conv.input[0])
+    s_in = np.float32(inits[x_dq.input[1]])
+    assert [Fraction(float(v)) for v in b_scale] == [Fraction(float(np.float32(s_in * s))) for s in w_scale]
