@@ -1,33 +1,36 @@
-"""check: the whole job in one call — load, observe, quantize, evaluate, budget, report.
+"""check: the whole job as stages in order — load, plan, calibrate, quantize, evaluate, budget, analyse,
+repair, verdict.
 
-`check(options)` returns a CheckResult whose `report` dict is what report.json holds; the CLI only
-parses arguments, calls this, writes files and prints the summary. Each stage is a plain function so
-tests and later features can call them one by one.
+Each stage is a plain function that takes the options and the results before it and returns a frozen
+result; `check(options)` runs them and returns a CheckResult holding every stage's result.
+qfit.report.build turns that into the report dict (what report.json holds); the CLI only parses
+arguments, calls these two, writes the files and prints the summary.
+
+The defaults of every option are written once, in CheckOptions (the CLI reads them from there).
 """
 from __future__ import annotations
 
-import math
 import os
-from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
-import numpy as np
 import onnx
-from tqdm import tqdm
 
-from qfit import __version__
-from qfit.measure.compare import EndMetrics, ErrorSums
 from qfit.data import DataFolder, Preprocess
 from qfit.errors import QfitError
 from qfit.graph.load import LoadedModel, load_model
+from qfit.runtime.opset_support import check_runtime_opset
+from qfit.measure import gate as gates, sensitivity
+from qfit.measure.evaluate import (compared_layers, end_metrics_only, evaluate, fill_layer_rows, output_kind,
+                                   progress_bar, sample_of)
+from qfit.memory import budget as memory_budget
+from qfit.quant import equalize
 from qfit.quant.observe import DEFAULT_PERCENTILE, TensorStats, observe
 from qfit.quant.plan import METHODS, Plan, PlanOptions, make_plan
-from qfit.quant.quantize import QuantizedModel, build_qdq, calibrated_ranges
+from qfit.quant.quantize import QuantizedModel, Quantizer
 from qfit.runtime.sessions import FAITHFUL_PATH, Runner
+from qfit.search import repair as repairs
 
-CAUTION = ("These figures hold for the data measured and the arithmetic named above. Validate the int8 "
-           "model on representative held-out data on the real device before relying on it. This report "
-           "does not replace the product's own safety validation.")
+REPAIR_ORDER_TIME_LIMIT_S = 0.5  # per plan the repair prices; a shorter search can only overstate SRAM
 
 
 @dataclass
@@ -48,36 +51,199 @@ class CheckOptions:
     eval_limit: int | None = None
     seed: int = 0
     batch_size: int = 16
+    threads: int = 0                  # onnxruntime intra-op threads per session (0 = its default)
     per_channel: bool = True
     symmetric_activations: bool = False
-    max_drop_pt: float | None = None
+    max_drop_pt: float | None = None  # None: the default gate (qfit.measure.gate.DEFAULT_MAX_DROP_PT)
+    accuracy_gate: bool = True        # False: no accuracy gate at all (--no-accuracy-gate)
+    gate_upper_bound: bool = False    # gate the upper end of the drop's 95 % interval (--gate-upper-bound)
+    expect_float_pt: float | None = None  # float top-1 measured in training (--expect-float)
+    expect_float_tolerance_pt: float = gates.DEFAULT_FLOAT_TOLERANCE_PT
+    class_order: list[str] | None = None  # class names in the model's output order (--class-order)
     threshold: float | None = None
     skip_bad: bool = False
     progress: bool = True
-    budget: dict = field(default_factory=dict)  # extra qfit.budget.BudgetOptions fields
-    equalize: bool = False            # cross-layer equalization + bias absorption (qfit.equalize)
-    bias_correction: bool = False     # empirical bias correction (qfit.equalize)
-    isolated_samples: int = 64        # cap of the isolated/kept-float sweep (qfit.sensitivity); 0 = off
-    repair: bool = True               # search repairs when the drop exceeds max_drop_pt (qfit.repair)
-    repair_layers: int = 8            # the most sensitive layers the repair tries
-    repair_steps: int = 12            # accepted steps at most
-    repair_samples: int = 1000        # evaluation samples the repair search measures on
+    budget: dict = field(default_factory=dict)  # extra qfit.memory.budget.BudgetOptions fields
+    equalize: bool = False            # cross-layer equalization + bias absorption (qfit.quant.equalize)
+    bias_correction: bool = False     # empirical bias correction (qfit.quant.equalize)
+    isolated_samples: int = sensitivity.DEFAULT_SAMPLE_CAP  # cap of the isolated sweep; 0 = off
+    repair: bool = True               # search repairs when the drop exceeds max_drop_pt (qfit.search.repair)
+    repair_layers: int = repairs.DEFAULT_LAYERS_TRIED     # the most sensitive layers the repair tries
+    repair_steps: int = repairs.DEFAULT_MAX_STEPS         # accepted steps at most
+    repair_samples: int = repairs.DEFAULT_SEARCH_SAMPLES  # evaluation samples the repair search measures on
 
 
-@dataclass
-class CheckResult:
-    report: dict
-    quantized: QuantizedModel
-    loaded: LoadedModel
+@dataclass(frozen=True)
+class OutputPaths:
+    """The files `qfit check` writes into the output folder: the model, then the three report views."""
+
+    model: str
+    report_json: str
+    report_md: str
+    report_html: str
+
+    @classmethod
+    def of(cls, options: CheckOptions) -> "OutputPaths":
+        stem = os.path.splitext(os.path.basename(options.model_path))[0]
+        return cls(*(os.path.join(options.out_dir, name) for name in
+                     (f"{stem}_int8.onnx", "report.json", "report.md", "report.html")))
+
+    def as_dict(self) -> dict[str, str]:
+        return {"model": self.model, "report_json": self.report_json, "report_md": self.report_md,
+                "report_html": self.report_html}
+
+
+# ---- stage results --------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Loaded:
+    model: LoadedModel
+    paths: OutputPaths
+
+
+@dataclass(frozen=True)
+class Planned:
+    options: PlanOptions
     plan: Plan
+
+
+@dataclass(frozen=True)
+class Calibration:
+    data: DataFolder
+    stats: dict[str, TensorStats]
+
+
+@dataclass(frozen=True)
+class Quantized:
+    """The QDQ model written, and what built it (the reference is the float model every int8 figure is
+    compared with: the input model, or its equalized equivalent)."""
+
+    reference: LoadedModel
+    quantizer: Quantizer
+    plan: Plan
+    model: QuantizedModel
+    improvements: dict            # report sections "equalization" and "bias_correction"
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    data: DataFolder
+    reused_calibration_data: bool
+    layers: list[dict]            # compared layers with weight bytes and accumulated error figures
+    accuracy: dict
+    predictions: dict | None      # paired per-sample predictions {"float", "int8", "labels"}
+    path: str = FAITHFUL_PATH     # the arithmetic that produced the figures
+
+
+@dataclass(frozen=True)
+class Budget:
+    options: memory_budget.BudgetOptions
+    result: memory_budget.BudgetResult
+
+
+@dataclass(frozen=True)
+class Analysis:
+    sensitivity: dict
+    layer_keys: dict[str, dict]   # layer name -> its sensitivity figures and repair costs
+    repair: dict
+    repaired_options: PlanOptions | None
+
+
+@dataclass(frozen=True)
+class Repaired:
+    """The figures of the model written: after the repair when it took steps, else those measured."""
+
+    quantized: Quantized
+    evaluation: Evaluation
+    budget: Budget
+    repair: dict
+
+
+@dataclass(frozen=True)
+class Verdict:
+    fits_flash: bool
+    fits_sram: bool
+    accuracy_ok: bool
+    max_drop_pt: float | None
+    failed: list[str]
     exit_code: int
-    model_file: str
-    predictions: dict | None = None  # paired per-sample predictions {"float", "int8", "labels"}
-    budget: object | None = None      # qfit.budget.BudgetResult, for its text/Markdown renderers
+    accuracy_gate: dict = field(default_factory=dict)   # qfit.measure.gate.accuracy_gate
+    float_check: dict | None = None                      # qfit.measure.gate.float_check
+    warnings: list[str] = field(default_factory=list)    # shown by every view
+
+    def to_dict(self) -> dict:
+        return {"fits_flash": self.fits_flash, "fits_sram": self.fits_sram, "accuracy_ok": self.accuracy_ok,
+                "max_drop_pt": self.max_drop_pt, "failed": list(self.failed), "exit_code": self.exit_code,
+                "accuracy_gate": dict(self.accuracy_gate), "float_check": self.float_check,
+                "warnings": list(self.warnings)}
 
 
-def _bar(total: int, desc: str, enabled: bool):
-    return tqdm(total=total, desc=desc, unit="sample", disable=not enabled, leave=False)
+@dataclass(frozen=True)
+class CheckResult:
+    options: CheckOptions
+    loaded: LoadedModel
+    paths: OutputPaths
+    planned: Planned
+    calibration: Calibration
+    analysis: Analysis
+    final: Repaired
+    verdict: Verdict
+
+    @property
+    def quantized(self) -> QuantizedModel:
+        return self.final.quantized.model
+
+    @property
+    def plan(self) -> Plan:
+        return self.final.quantized.plan
+
+    @property
+    def exit_code(self) -> int:
+        return self.verdict.exit_code
+
+    @property
+    def model_file(self) -> str:
+        return self.paths.model
+
+    @property
+    def predictions(self) -> dict | None:
+        return self.final.evaluation.predictions
+
+
+def check(options: CheckOptions) -> CheckResult:
+    """Run the whole job; raise QfitError for bad input."""
+    loaded = load_stage(options)
+    planned = plan_stage(options, loaded)
+    calibration = calibration_stage(options, loaded, planned)
+    eval_data, reused = open_evaluation(options, loaded.model)
+    quantized = quantize_stage(options, loaded, planned, calibration, eval_data)
+    evaluation = evaluation_stage(options, quantized, eval_data, reused)
+    budgeted = budget_stage(options, quantized)
+    analysis = analysis_stage(options, planned, quantized, evaluation, budgeted)
+    final = repair_stage(options, quantized, evaluation, budgeted, analysis)
+    verdict = verdict_stage(options, final)
+    return CheckResult(options, loaded.model, loaded.paths, planned, calibration, analysis, final, verdict)
+
+
+# ---- load, plan, calibrate ------------------------------------------------------------------------
+
+def load_stage(options: CheckOptions) -> Loaded:
+    """Check the options (before any work), then load the model."""
+    if options.method not in METHODS:
+        raise QfitError(f"--method: unknown method '{options.method}' (choose from {', '.join(METHODS)})")
+    check_analysis_options(options)
+    paths = OutputPaths.of(options)
+    model_real = os.path.realpath(options.model_path)
+    for path in paths.as_dict().values():
+        # checked before any work: the input model must never be replaced by an output
+        if os.path.realpath(path) == model_real:
+            raise QfitError(f"--out: writing {path} would overwrite the input model {options.model_path}")
+    return Loaded(check_runtime_opset(load_model(options.model_path, options.input_shapes)), paths)
+
+
+def plan_stage(options: CheckOptions, loaded: Loaded) -> Planned:
+    plan_options = PlanOptions(per_channel=options.per_channel, symmetric_activations=options.symmetric_activations)
+    return Planned(plan_options, make_plan(loaded.model, plan_options))
 
 
 def open_data(folder: str, loaded: LoadedModel, options: CheckOptions, role: str,
@@ -88,16 +254,17 @@ def open_data(folder: str, loaded: LoadedModel, options: CheckOptions, role: str
     if out_shape is not None and len(out_shape) == 2:
         num_classes = int(out_shape[1])
     return DataFolder(folder, inputs, preprocess=options.preprocess, labels_csv=labels_csv, limit=limit,
-                      seed=options.seed, skip_bad=options.skip_bad, role=role, num_classes=num_classes)
+                      seed=options.seed, skip_bad=options.skip_bad, role=role, num_classes=num_classes,
+                      class_order=options.class_order)
 
 
 def calibrate(loaded: LoadedModel, plan: Plan, data: DataFolder, batch_size: int,
-              progress: bool = True, histograms: bool = True) -> dict[str, TensorStats]:
+              progress: bool = True, histograms: bool = True, threads: int = 0) -> dict[str, TensorStats]:
     """One streaming pass of the float model, collecting range statistics for every quantizer
     (`histograms=False`: min/max only, enough for the min-max method)."""
     tensors = plan.calibrated_tensors()
-    runner = Runner(loaded.model, tensors, batch_size=batch_size)
-    with _bar(len(data), "calibrating", progress) as bar:
+    runner = Runner(loaded.model, tensors, batch_size=batch_size, threads=threads)
+    with progress_bar(len(data), "calibrating", progress) as bar:
         stats = observe(runner, data.batches(batch_size), tensors, bar, histograms=histograms)
     bad = [name for name, s in stats.items() if s.nonfinite]
     if bad:
@@ -112,271 +279,143 @@ def calibrate(loaded: LoadedModel, plan: Plan, data: DataFolder, batch_size: int
 def needs_histograms(options: CheckOptions) -> bool:
     """Only the min-max method can do without histograms, and only when no repair search may try
     the other methods on the same statistics."""
-    return options.method != "minmax" or (options.max_drop_pt is not None and options.repair)
+    return options.method != "minmax" or (gate_options(options).enabled and options.repair)
 
 
-def compared_layers(loaded: LoadedModel, plan: Plan) -> list[dict]:
-    """The rows of the per-layer table: one per node, with the tensor its error is measured on.
-
-    A ReLU that absorbs its producer's output is not a row of its own: the producer's row measures
-    the tensor after the clamp, as an int8 kernel stores it.
-    """
-    rows = []
-    absorbed = set(plan.fused.values())
-    for node in loaded.graph.node:
-        # the first output present (an LSTM may leave its sequence output Y unused, "")
-        out = next((o for o in node.output if o), None)
-        if out is None or out in absorbed:
-            continue
-        tensor = plan.fused.get(out, out)
-        if tensor not in loaded.shapes:
-            continue
-        rows.append({"name": node.name, "op_type": node.op_type, "tensor": tensor,
-                     "precision": "float" if node.name in plan.float_nodes else
-                     ("int16" if plan.bits_of(tensor) == 16 else "int8")})
-    return rows
+def calibration_stage(options: CheckOptions, loaded: Loaded, planned: Planned) -> Calibration:
+    data = open_data(options.calib_dir, loaded.model, options, "calibration", limit=options.limit)
+    stats = calibrate(loaded.model, planned.plan, data, options.batch_size, options.progress,
+                      needs_histograms(options), options.threads)
+    return Calibration(data, stats)
 
 
-def output_kind(loaded: LoadedModel) -> str:
-    """'classification' when the first output is (N, K) with K > 1, else 'score'."""
-    shape = loaded.shapes.get(loaded.output_names[0], ())
-    return "classification" if len(shape) == 2 and shape[1] > 1 else "score"
+def open_evaluation(options: CheckOptions, loaded: LoadedModel) -> tuple[DataFolder, bool]:
+    """The evaluation folder, opened once for every pass that measures (the sensitivity sweep and the
+    repair search take seeded samples of it); True when it is the calibration folder itself."""
+    reused = options.eval_dir is None or os.path.abspath(options.eval_dir) == os.path.abspath(options.calib_dir)
+    data = open_data(options.eval_dir or options.calib_dir, loaded, options, "evaluation",
+                     labels_csv=options.labels_csv, limit=options.eval_limit)
+    return data, reused
 
 
-def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict], data: DataFolder,
-             batch_size: int, threshold: float | None = None, progress: bool = True) -> tuple[dict, dict[str, ErrorSums]]:
-    """Float and faithful int8 passes over `data`: end metrics and accumulated per-layer errors."""
-    output = loaded.output_names[0]
-    tensors = list(dict.fromkeys([row["tensor"] for row in layers] + [output]))
-    int8_names = [quantized.dequantized.get(t, t) for t in tensors]
-    float_runner = Runner(loaded.model, tensors, batch_size=batch_size)
-    int8_runner = Runner(quantized.model, int8_names, faithful=True, batch_size=batch_size)
-    sums = {t: ErrorSums() for t in tensors}
-    metrics = EndMetrics(output_kind(loaded), threshold)
-    input_name = loaded.input_names[0]
-    reconstruction = loaded.shapes.get(output) == loaded.shapes.get(input_name)
+# ---- quantize (with the optional published improvements) -----------------------------------------
 
-    def absorb(batch, reference: dict, got: dict) -> None:
-        for t, q in zip(tensors, int8_names):
-            sums[t].update(reference[t], got[q])
-        score_inputs = None
-        if reconstruction and threshold is not None:
-            x = batch.inputs[input_name]
-            n = x.shape[0]
-            score_inputs = (((reference[output] - x) ** 2).reshape(n, -1).mean(1),
-                            ((got[quantized.dequantized.get(output, output)] - x) ** 2).reshape(n, -1).mean(1))
-        metrics.update(reference[output], got[quantized.dequantized.get(output, output)],
-                       batch.labels, score_inputs)
-
-    # As in qfit.observe: one worker sums batch k while onnxruntime runs batch k+1; batches are
-    # absorbed in order, one at a time, so the sums are those of a plain loop.
-    with _bar(len(data), "evaluating", progress) as bar, \
-            ThreadPoolExecutor(max_workers=1, thread_name_prefix="qfit-evaluate") as worker:
-        pending = None
-        for batch in data.batches(batch_size):
-            reference = float_runner(batch.inputs)
-            got = int8_runner(batch.inputs)
-            if pending is not None:
-                pending.result()
-            pending = worker.submit(absorb, batch, reference, got)
-            bar.update(len(batch.files))
-        if pending is not None:
-            pending.result()
-    return metrics.result(), sums
-
-
-def weight_bytes_by_node(loaded: LoadedModel, plan: Plan) -> dict[str, int]:
-    totals: dict[str, int] = {}
-    for (node, _), wq in plan.weights.items():
-        totals[node] = totals.get(node, 0) + int(loaded.constants[wq.tensor].size) * wq.bits // 8
-    return totals
-
-
-def output_paths(options: CheckOptions) -> dict[str, str]:
-    """The files `qfit check` writes into the output folder (the model, then the three report views)."""
-    stem = os.path.splitext(os.path.basename(options.model_path))[0]
-    return {"model": os.path.join(options.out_dir, f"{stem}_int8.onnx"),
-            "report_json": os.path.join(options.out_dir, "report.json"),
-            "report_md": os.path.join(options.out_dir, "report.md"),
-            "report_html": os.path.join(options.out_dir, "report.html")}
-
-
-def _budget_and_rows(loaded: LoadedModel, plan: Plan, budget_options, layers: list[dict],
-                     sums: dict[str, ErrorSums]):
-    """Budget the plan and fill each layer row's weight bytes and accumulated error figures."""
-    from qfit.memory import budget as budget_module
-    budget_result = budget_module.analyze(loaded, plan, budget_options)
-    weight_bytes = weight_bytes_by_node(loaded, plan)
-    for row in layers:
-        row["weight_bytes_int8"] = weight_bytes.get(row["name"], 0)
-        row.update(sums[row["tensor"]].to_dict())
-    return budget_result, budget_result.to_dict()
-
-
-def check(options: CheckOptions) -> CheckResult:
-    """Run the whole job; raise QfitError for bad input."""
-    if options.method not in METHODS:
-        raise QfitError(f"--method: unknown method '{options.method}' (choose from {', '.join(METHODS)})")
-    check_analysis_options(options)
-    model_file = output_paths(options)["model"]
-    model_real = os.path.realpath(options.model_path)
-    for path in output_paths(options).values():
-        # checked before any work: the input model must never be replaced by an output
-        if os.path.realpath(path) == model_real:
-            raise QfitError(f"--out: writing {path} would overwrite the input model {options.model_path}")
-    loaded = load_model(options.model_path, options.input_shapes)
-    plan_options = PlanOptions(per_channel=options.per_channel, symmetric_activations=options.symmetric_activations)
-    plan = make_plan(loaded, plan_options)
-    calib = open_data(options.calib_dir, loaded, options, "calibration", limit=options.limit)
-    stats = calibrate(loaded, plan, calib, options.batch_size, options.progress, needs_histograms(options))
-    ranges = calibrated_ranges(plan, stats, options.method, options.percentile)
-    quantized = build_qdq(loaded, plan, ranges)
+def _checked(quantized: QuantizedModel, what: str) -> QuantizedModel:
     try:
         onnx.checker.check_model(quantized.model)
-    except Exception as e:  # a bug in qfit, not the user's input: let it surface with context
-        raise RuntimeError(f"the written QDQ model fails the ONNX checker: {e}") from e
-
-    reused = options.eval_dir is None or os.path.abspath(options.eval_dir) == os.path.abspath(options.calib_dir)
-    eval_data = open_data(options.eval_dir or options.calib_dir, loaded, options, "evaluation",
-                          labels_csv=options.labels_csv, limit=options.eval_limit)
-    prepared = prepare_quantization(options, loaded, plan_options, plan, stats, quantized, calib, eval_data)
-    reference, plan, quantized = prepared.reference, prepared.plan, prepared.quantized
-    layers = compared_layers(reference, plan)
-    accuracy, sums = evaluate(reference, quantized, layers, eval_data, options.batch_size, options.threshold,
-                              options.progress)
-
-    from qfit.memory import budget as budget_module
-    budget_options = budget_module.BudgetOptions(flash_limit_bytes=options.flash_limit_bytes,
-                                                 sram_limit_bytes=options.sram_limit_bytes,
-                                                 flash_reserve_bytes=options.flash_reserve_bytes,
-                                                 **options.budget)
-    budget_result, memory = _budget_and_rows(prepared.builder.loaded, plan, budget_options, layers, sums)
-
-    analysis, repaired = sensitivity_and_repair(options, prepared, plan_options, layers, accuracy, budget_options)
-    if repaired is not None:
-        # The written model carries the repair: re-measure it in full, keep the pre-repair analysis.
-        before = {row["name"]: row for row in layers}
-        analysed_keys = [key for key in SENSITIVITY_KEYS if any(key in row for row in before.values())]
-        plan, quantized = prepared.builder.build(repaired)
-        layers = compared_layers(reference, plan)
-        accuracy, sums = evaluate(reference, quantized, layers, eval_data, options.batch_size, options.threshold,
-                                  options.progress)
-        budget_result, memory = _budget_and_rows(prepared.builder.loaded, plan, budget_options, layers, sums)
-        for row in layers:
-            old = before.get(row["name"], {})
-            row.update({key: old.get(key) for key in analysed_keys})
-        finish_repair(analysis["repair"], accuracy, memory)
-
-    failed = []
-    if not memory["flash"]["fits"]:
-        failed.append("flash")
-    if not memory["sram"]["fits"]:
-        failed.append("sram")
-    accuracy_ok = True
-    if options.max_drop_pt is not None and accuracy.get("metric") in ("top1", "agreement"):
-        accuracy_ok = accuracy["drop_pt"] <= options.max_drop_pt
-        if not accuracy_ok:
-            failed.append("accuracy")
-    predictions = accuracy.pop("predictions", None)
-    report = {
-        "tool_version": __version__,
-        "model": {"path": options.model_path, **memory["model"],
-                  "inputs": {n: list(loaded.shapes[n]) for n in loaded.input_names},
-                  "outputs": {n: list(loaded.shapes.get(n, ())) for n in loaded.output_names},
-                  "opset": loaded.original_opset, "notes": loaded.notes,
-                  "float_nodes": sorted(plan.unsupported_nodes)},
-        "quantization": {"weights": "per-channel symmetric int8" if options.per_channel else
-                         "per-tensor symmetric int8",
-                         "activations": "per-tensor symmetric int8" if options.symmetric_activations else
-                         "per-tensor asymmetric int8",
-                         "bias": "int32, scale = input scale x weight scale",
-                         "method": options.method,
-                         "percentile": options.percentile if options.method == "percentile" else None},
-        "calibration": calib.describe(),
-        "evaluation": {**eval_data.describe(), "reused_calibration_data": reused},
-        "evaluation_path": FAITHFUL_PATH,
-        **{k: v for k, v in memory.items() if k != "model"},
-        "accuracy": accuracy,
-        "layers": layers,
-        **analysis,
-        **prepared.sections,
-        "verdict": {"fits_flash": memory["flash"]["fits"], "fits_sram": memory["sram"]["fits"],
-                    "accuracy_ok": accuracy_ok, "max_drop_pt": options.max_drop_pt, "failed": failed,
-                    "exit_code": 1 if failed else 0},
-        "outputs": {"model": os.path.basename(model_file), "report_json": "report.json",
-                    "report_md": "report.md"},
-        "caution": CAUTION,
-    }
-    return CheckResult(report=report, quantized=quantized, loaded=loaded, plan=plan,
-                       exit_code=1 if failed else 0, model_file=model_file, predictions=predictions,
-                       budget=budget_result)
+    except onnx.checker.ValidationError as e:  # a bug in qfit, not the user's input: surface it with context
+        raise RuntimeError(f"the {what} QDQ model fails the ONNX checker: {e}") from e
+    return quantized
 
 
-
-# ---- published improvements, sensitivity and repair (qfit.equalize, qfit.sensitivity, qfit.repair) --
-
-@dataclass
-class Prepared:
-    """What the quantization after the optional improvements starts from."""
-
-    reference: LoadedModel        # float model every int8 figure is compared with (same function as the input)
-    builder: object               # qfit.repair.ModelBuilder: PlanOptions -> QDQ model
-    plan: Plan
-    quantized: QuantizedModel
-    sections: dict                # report sections "equalization" and "bias_correction"
-
-
-def end_metrics_only(reference: LoadedModel, quantized: QuantizedModel, data: DataFolder,
-                     options: CheckOptions) -> dict:
-    """Drop, int8 figure and output SQNR of one QDQ model (no per-layer tensors)."""
-    accuracy, _ = evaluate(reference, quantized, [], data, options.batch_size, options.threshold, options.progress)
-    keys = ("metric", "float", "int8", "drop_pt", "drop_ci95_pt", "agreement_pct", "output_sqnr_db",
-            "decision_flips_pct")
-    return {k: accuracy[k] for k in keys if k in accuracy}
-
-
-def prepare_quantization(options: CheckOptions, loaded: LoadedModel, plan_options: PlanOptions, plan: Plan,
-                         stats: dict[str, TensorStats], quantized: QuantizedModel, calib: DataFolder,
-                         eval_data: DataFolder) -> Prepared:
-    """Cross-layer equalization and bias correction when asked for, each measured before and after."""
-    from qfit.quant import equalize
-    from qfit.search.repair import ModelBuilder
-
-    builder = ModelBuilder(loaded, stats, options.method, options.percentile, calib, options.batch_size)
+def quantize_stage(options: CheckOptions, loaded: Loaded, planned: Planned, calibration: Calibration,
+                   eval_data: DataFolder) -> Quantized:
+    """The QDQ model of the plan; with cross-layer equalization and bias correction when asked for,
+    each measured before and after on the evaluation data."""
+    calib, batch, threads = calibration.data, options.batch_size, options.threads
+    quantizer = Quantizer(loaded.model, calibration.stats, options.method, options.percentile, calib, batch,
+                          threads=threads)
+    plan, quantized = quantizer.build_plan(planned.plan)
+    _checked(quantized, "written")
     sections = {"equalization": {"enabled": bool(options.equalize)},
                 "bias_correction": {"enabled": bool(options.bias_correction)}}
     if not (options.equalize or options.bias_correction):
-        return Prepared(loaded, builder, plan, quantized, sections)
-    reference = loaded
-    before = end_metrics_only(loaded, quantized, eval_data, options)
+        return Quantized(loaded.model, quantizer, plan, quantized, sections)
+    reference = loaded.model
+
+    def measured(model: QuantizedModel) -> dict:
+        return end_metrics_only(reference, model, eval_data, batch, options.threshold, options.progress, threads)
+
+    before = measured(quantized)
     if options.equalize:
-        result = equalize.equalize(loaded, calib, options.batch_size)
+        result = equalize.equalize(loaded.model, calib, batch)
         reference = result.loaded
-        eq_plan = make_plan(reference, plan_options)
-        eq_stats = calibrate(reference, eq_plan, calib, options.batch_size, options.progress,
-                             needs_histograms(options))
-        builder = ModelBuilder(reference, eq_stats, options.method, options.percentile, calib, options.batch_size)
-        plan, quantized = builder.build(plan_options)
-        after = end_metrics_only(reference, quantized, eval_data, options)
+        eq_plan = make_plan(reference, planned.options)
+        eq_stats = calibrate(reference, eq_plan, calib, batch, options.progress, needs_histograms(options), threads)
+        quantizer = Quantizer(reference, eq_stats, options.method, options.percentile, calib, batch, threads=threads)
+        plan, quantized = quantizer.build(planned.options)
+        after = measured(quantized)
         sections["equalization"].update({**result.to_dict(), "before": before, "after": after})
         before = after
     if options.bias_correction:
-        correction = equalize.bias_correction(builder.loaded, plan, quantized, calib, options.batch_size)
-        builder = ModelBuilder(correction.structure(builder.loaded), builder.stats, options.method,
-                               options.percentile, calib, options.batch_size, bias_correction=correction)
-        plan, quantized = builder.build(plan_options)
-        after = end_metrics_only(reference, quantized, eval_data, options)
+        correction = equalize.bias_correction(quantizer.loaded, plan, quantized, calib, batch)
+        quantizer = Quantizer(correction.structure(quantizer.loaded), quantizer.stats, options.method,
+                              options.percentile, calib, batch, bias_correction=correction, threads=threads)
+        plan, quantized = quantizer.build(planned.options)
+        after = measured(quantized)
         sections["bias_correction"].update({**correction.to_dict(), "before": before, "after": after})
-    try:
-        onnx.checker.check_model(quantized.model)
-    except Exception as e:  # a bug in qfit, not the user's input
-        raise RuntimeError(f"the improved QDQ model fails the ONNX checker: {e}") from e
-    return Prepared(reference, builder, plan, quantized, sections)
+    return Quantized(reference, quantizer, plan, _checked(quantized, "improved"), sections)
 
 
-SENSITIVITY_KEYS = ("sqnr_isolated_db", "cosine_isolated", "isolated_output_sqnr_db", "sensitivity_pt",
-                    "sensitivity_agreement_pt", "float_recovery_pt", "float_recovery_agreement_pt",
-                    "output_sqnr_if_float_db", "sensitivity_rank", "fallback_cost_bytes")
+# ---- evaluate, budget -----------------------------------------------------------------------------
+
+def evaluation_stage(options: CheckOptions, quantized: Quantized, data: DataFolder, reused: bool) -> Evaluation:
+    layers = compared_layers(quantized.reference, quantized.plan)
+    accuracy, sums = evaluate(quantized.reference, quantized.model, layers, data, options.batch_size,
+                              options.threshold, options.progress, options.threads)
+    fill_layer_rows(quantized.quantizer.loaded, quantized.plan, layers, sums)
+    predictions = accuracy.pop("predictions", None)
+    return Evaluation(data, reused, layers, accuracy, predictions)
+
+
+def budget_stage(options: CheckOptions, quantized: Quantized) -> Budget:
+    budget_options = memory_budget.BudgetOptions(flash_limit_bytes=options.flash_limit_bytes,
+                                                 sram_limit_bytes=options.sram_limit_bytes,
+                                                 flash_reserve_bytes=options.flash_reserve_bytes, **options.budget)
+    return Budget(budget_options, memory_budget.analyze(quantized.quantizer.loaded, quantized.plan, budget_options))
+
+
+# ---- where the accuracy goes, and the repair search -----------------------------------------------
+
+def classification_drop(accuracy: dict) -> float | None:
+    """The drop in points when the metric has one (top-1 with labels, argmax agreement without)."""
+    return accuracy.get("drop_pt") if accuracy.get("metric") in ("top1", "agreement") else None
+
+
+def analysis_stage(options: CheckOptions, planned: Planned, quantized: Quantized, evaluation: Evaluation,
+                   budgeted: Budget) -> Analysis:
+    """Rank the layers, price their repairs and, given --max-drop, search for the repair."""
+    counter_options = replace(budgeted.options, what_if=False,
+                              order_time_limit_s=min(budgeted.options.order_time_limit_s, REPAIR_ORDER_TIME_LIMIT_S))
+    counter = repairs.ByteCounter(quantized.quantizer.loaded, counter_options)
+    counter.record(quantized.plan, budgeted.result)   # the written plan is analysed once, in full
+    costs = repairs.fallback_costs(quantized.quantizer, planned.options, evaluation.layers, counter)
+    section, rows = sensitivity_section(options, quantized, evaluation)
+    layer_keys = {}
+    for row in evaluation.layers:
+        keys = {}
+        for key in (section["isolated_key"], section["float_key"], "sqnr_isolated_db", "cosine_isolated",
+                    "isolated_output_sqnr_db", "sensitivity_rank"):
+            if key:
+                keys[key] = rows.get(row["name"], {}).get(key)
+        keys["fallback_cost_bytes"] = costs.get(row["name"])
+        layer_keys[row["name"]] = keys
+    repair_section, repaired = repair_search(options, planned, quantized, evaluation, section["ranking"], counter)
+    return Analysis(section, layer_keys, repair_section, repaired)
+
+
+def sensitivity_section(options: CheckOptions, quantized: Quantized, evaluation: Evaluation) -> tuple[dict, dict]:
+    """The report section "sensitivity" and its per-layer figures (the isolated sweep on a sample of
+    the evaluation data; without it, the ranking by accumulated SQNR)."""
+    accuracy, layers = evaluation.accuracy, evaluation.layers
+    kind = output_kind(quantized.reference)
+    if not options.isolated_samples:
+        isolated_key, float_key = sensitivity.metric_keys(kind, accuracy.get("metric") == "top1")
+        ranking = [r["name"] for r in sorted((r for r in layers if r["precision"] != "float"),
+                                             key=lambda r: r.get("sqnr_db", 0.0))]
+        return {"samples_used": 0, "skipped": "isolated sweep switched off (--isolated-samples 0)",
+                "isolated_key": isolated_key, "float_key": float_key, "ranking": ranking}, {}
+    cap = capped(options.isolated_samples, options.eval_limit)
+    sample = sample_of(evaluation.data, cap, options.seed)
+    with progress_bar(len(sample), "sensitivity", options.progress) as bar:
+        swept = sensitivity.sweep(quantized.reference, quantized.plan, quantized.model, layers, sample,
+                                  options.batch_size, kind, accuracy.get("samples"), cap, bar, options.threads)
+    rows = swept.pop("rows")
+    return swept, rows
+
+
+def capped(samples: int, eval_limit: int | None) -> int:
+    return samples if eval_limit is None else min(samples, eval_limit)
 
 
 def _repair_section(target, reason: str, reached=None, drop=None) -> dict:
@@ -384,111 +423,94 @@ def _repair_section(target, reason: str, reached=None, drop=None) -> dict:
             "reached": reached, "reason": reason}
 
 
-def sensitivity_and_repair(options: CheckOptions, prepared: Prepared, plan_options: PlanOptions,
-                           layers: list[dict], accuracy: dict, budget_options) -> tuple[dict, PlanOptions | None]:
-    """Rank the layers, price their repairs and, given --max-drop, search for the repair.
-
-    Adds the sensitivity keys to each row of `layers`; returns the report sections "sensitivity" and
-    "repair" and the PlanOptions chosen by the repair (None when nothing changed)."""
-    from dataclasses import replace as dataclass_replace
-
-    from qfit.search import repair
-    from qfit.measure import sensitivity
-
-    reference, builder = prepared.reference, prepared.builder
-    counter_options = dataclass_replace(budget_options, what_if=False,
-                                        order_time_limit_s=min(budget_options.order_time_limit_s,
-                                                               REPAIR_ORDER_TIME_LIMIT_S))
-    counter = repair.ByteCounter(builder.loaded, counter_options)
-    costs = repair.fallback_costs(builder, plan_options, layers, counter)
-    kind = output_kind(reference)
-    eval_folder = options.eval_dir or options.calib_dir
-    eval_labels = options.labels_csv if options.eval_dir else None
-    sections: dict = {}
-    if options.isolated_samples and options.isolated_samples > 0:
-        cap = options.isolated_samples if options.eval_limit is None else min(options.isolated_samples,
-                                                                            options.eval_limit)
-        sample = open_data(eval_folder, reference, options, "evaluation", labels_csv=eval_labels, limit=cap)
-        with _bar(len(sample), "sensitivity", options.progress) as bar:
-            swept = sensitivity.sweep(reference, prepared.plan, prepared.quantized, layers, sample,
-                                      options.batch_size, kind, accuracy.get("samples"), cap, bar)
-        rows = swept.pop("rows")
-        sections["sensitivity"] = swept
-    else:
-        rows = {}
-        isolated_key, float_key = sensitivity.metric_keys(kind, accuracy.get("metric") == "top1")
-        sections["sensitivity"] = {"samples_used": 0, "skipped": "isolated sweep switched off (--isolated-samples 0)",
-                                   "isolated_key": isolated_key, "float_key": float_key,
-                                   "ranking": [r["name"] for r in sorted(
-                                       (r for r in layers if r["precision"] != "float"),
-                                       key=lambda r: r.get("sqnr_db", 0.0))]}
-    for row in layers:
-        for key in (sections["sensitivity"]["isolated_key"], sections["sensitivity"]["float_key"],
-                    "sqnr_isolated_db", "cosine_isolated", "isolated_output_sqnr_db", "sensitivity_rank"):
-            if key:
-                row[key] = rows.get(row["name"], {}).get(key)
-        row["fallback_cost_bytes"] = costs.get(row["name"])
-
-    target = options.max_drop_pt
-    drop = accuracy.get("drop_pt") if accuracy.get("metric") in ("top1", "agreement") else None
+def repair_search(options: CheckOptions, planned: Planned, quantized: Quantized, evaluation: Evaluation,
+                  ranking: list[str], counter: repairs.ByteCounter) -> tuple[dict, PlanOptions | None]:
+    """The report section "repair" and the PlanOptions the search chose (None when nothing changed)."""
+    target, accuracy = gates.target_drop_pt(gate_options(options)), evaluation.accuracy
+    drop = classification_drop(accuracy)
     if target is None:
-        sections["repair"] = _repair_section(None, "no --max-drop given: no target to repair towards", drop=drop)
-        return sections, None
+        return _repair_section(None, "accuracy gate switched off (--no-accuracy-gate): no target to repair "
+                                     "towards", drop=drop), None
     if drop is None:
-        sections["repair"] = _repair_section(target, "the model output is a score, not classes: there is no "
-                                             "accuracy drop for --max-drop to bound")
-        return sections, None
+        return _repair_section(target, "the model output is a score, not classes: there is no accuracy drop "
+                                       "for --max-drop to bound"), None
     if drop <= target:
-        sections["repair"] = _repair_section(target, f"the int8 drop {drop:.2f} pt is already within the "
-                                             f"target {target:.2f} pt", reached=True, drop=drop)
-        return sections, None
+        return _repair_section(target, f"the int8 drop {drop:.2f} pt is already within the target {target:.2f} pt",
+                               reached=True, drop=drop), None
     if not options.repair:
-        sections["repair"] = _repair_section(target, "repair switched off (--no-repair)", reached=False, drop=drop)
-        return sections, None
-    by_name = {row["name"]: row for row in layers}
-    ranked = [by_name[name] for name in sections["sensitivity"]["ranking"] if name in by_name]
-    search_limit = options.repair_samples
-    if options.eval_limit is not None:
-        search_limit = min(search_limit, options.eval_limit)
-    search_data = open_data(eval_folder, reference, options, "evaluation", labels_csv=eval_labels, limit=search_limit)
-    meter = repair.DropMeter(reference, search_data, options.batch_size)
-    with tqdm(desc="repair", unit="candidate", disable=not options.progress, leave=False) as bar:
-        found = repair.greedy_repair(builder, plan_options, ranked, meter, counter, target,
-                                     budget_options.flash_limit_bytes, budget_options.sram_limit_bytes,
+        return _repair_section(target, "repair switched off (--no-repair)", reached=False, drop=drop), None
+    by_name = {row["name"]: row for row in evaluation.layers}
+    ranked = [by_name[name] for name in ranking if name in by_name]
+    search_data = sample_of(evaluation.data, capped(options.repair_samples, options.eval_limit), options.seed)
+    meter = repairs.DropMeter(quantized.reference, search_data, options.batch_size, threads=options.threads)
+    quantizer = quantized.quantizer
+    with progress_bar(None, "repair", options.progress, unit="candidate") as bar:
+        found = repairs.greedy_repair(quantizer, planned.options, ranked, meter, counter, target,
+                                     options.flash_limit_bytes, options.sram_limit_bytes,
                                      layers_tried=options.repair_layers, max_steps=options.repair_steps,
                                      progress=lambda text: bar.update(1))
-    sections["repair"] = {"target_drop_pt": target, "steps": found.steps, "drop_before_pt": drop,
-                          "final_drop_pt": drop, "reached": found.reached, "reason": found.reason,
-                          "search": {"samples": meter.samples, "samples_available": accuracy.get("samples"),
-                                     "drop_before_pt": round(found.drop_before_pt, 4),
-                                     "drop_after_pt": round(found.drop_after_pt, 4),
-                                     "layers_tried": min(options.repair_layers, len(ranked)),
-                                     "candidates_screened": found.candidates_screened,
-                                     "candidates_verified": found.candidates_verified,
-                                     "screen_samples": found.screen_samples,
-                                     "extra_calibration_passes": builder.extra_calibration_passes},
-                          "refused": found.refused}
-    return sections, (found.options if found.steps else None)
+    section = {"target_drop_pt": target, "steps": found.steps, "drop_before_pt": drop, "final_drop_pt": drop,
+               "reached": found.reached, "reason": found.reason,
+               "search": {"samples": meter.samples, "samples_available": accuracy.get("samples"),
+                          "drop_before_pt": round(found.drop_before_pt, 4),
+                          "drop_after_pt": round(found.drop_after_pt, 4),
+                          "layers_tried": min(options.repair_layers, len(ranked)),
+                          "candidates_screened": found.candidates_screened,
+                          "candidates_verified": found.candidates_verified,
+                          "screen_samples": found.screen_samples,
+                          "extra_calibration_passes": quantizer.extra_calibration_passes},
+               "refused": found.refused}
+    return section, (found.options if found.steps else None)
 
 
-REPAIR_ORDER_TIME_LIMIT_S = 0.5  # per plan the repair prices; a shorter search can only overstate SRAM
+# ---- repair, verdict ------------------------------------------------------------------------------
+
+def repair_stage(options: CheckOptions, quantized: Quantized, evaluation: Evaluation, budgeted: Budget,
+                 analysis: Analysis) -> Repaired:
+    """The written model carries the repair: re-measure it in full (the analysis keeps the pre-repair
+    figures) and put its own figures into the repair section."""
+    if analysis.repaired_options is None:
+        return Repaired(quantized, evaluation, budgeted, analysis.repair)
+    plan, model = quantized.quantizer.build(analysis.repaired_options)
+    quantized = replace(quantized, plan=plan, model=model)
+    evaluation = evaluation_stage(options, quantized, evaluation.data, evaluation.reused_calibration_data)
+    budgeted = budget_stage(options, quantized)
+    return Repaired(quantized, evaluation, budgeted, finished_repair(analysis.repair, evaluation, budgeted))
 
 
-def finish_repair(section: dict, accuracy: dict, memory: dict) -> None:
-    """Put the written model's own figures (full evaluation set, full budget) into the repair section."""
-    target = section["target_drop_pt"]
-    final = accuracy.get("drop_pt")
-    section["final_drop_pt"] = final
-    fits = memory["flash"]["fits"] is not False and memory["sram"]["fits"] is not False
+def finished_repair(section: dict, evaluation: Evaluation, budgeted: Budget) -> dict:
+    """The repair section with the written model's figures (full evaluation set, full budget)."""
+    section = dict(section)
+    target, final = section["target_drop_pt"], evaluation.accuracy.get("drop_pt")
+    flash_fits, sram_fits = budgeted.result.flash_fits, budgeted.result.sram_fits
+    fits = flash_fits is not False and sram_fits is not False
     within = final is not None and final <= target
     searched = section.get("search", {})
+    section["final_drop_pt"] = final
     section["reached"] = bool(within and fits)
     if not fits:
         section["reason"] += "; but the final budget does not fit: " + ", ".join(
-            what for what in ("flash", "sram") if memory[what]["fits"] is False)
+            what for what, ok in (("flash", flash_fits), ("sram", sram_fits)) if ok is False)
     elif within != (searched.get("drop_after_pt", final) <= target):
-        section["reason"] += (f"; on the full evaluation set ({accuracy.get('samples')} samples) the drop is "
-                              f"{final:.2f} pt, the search used {searched.get('samples')} samples")
+        section["reason"] += (f"; on the full evaluation set ({evaluation.accuracy.get('samples')} samples) the "
+                              f"drop is {final:.2f} pt, the search used {searched.get('samples')} samples")
+    return section
+
+
+def gate_options(options: CheckOptions) -> gates.GateOptions:
+    return gates.GateOptions(max_drop_pt=options.max_drop_pt, enabled=options.accuracy_gate,
+                             on_upper_bound=options.gate_upper_bound, expect_float_pt=options.expect_float_pt,
+                             float_tolerance_pt=options.expect_float_tolerance_pt)
+
+
+def verdict_stage(options: CheckOptions, final: Repaired) -> Verdict:
+    """Flash, SRAM and the accuracy gate (qfit.measure.gate: a default limit without --max-drop)."""
+    fits_flash, fits_sram = final.budget.result.flash_fits, final.budget.result.sram_fits
+    failed = [name for name, fits in (("flash", fits_flash), ("sram", fits_sram)) if not fits]
+    judged = gates.judge(final.evaluation.accuracy, gate_options(options))
+    failed += judged["failed"]
+    return Verdict(fits_flash, fits_sram, judged["accuracy_ok"], judged["accuracy_gate"]["max_drop_pt"], failed,
+                   1 if failed else 0, judged["accuracy_gate"], judged["float_check"], judged["warnings"])
 
 
 def check_analysis_options(options: CheckOptions) -> None:
@@ -500,6 +522,4 @@ def check_analysis_options(options: CheckOptions) -> None:
                         ("--repair-samples", options.repair_samples)):
         if value is None or value < 1:
             raise QfitError(f"{flag}: must be a positive number, got {value}")
-    if options.max_drop_pt is not None and not math.isfinite(options.max_drop_pt):
-        # a negative target is allowed: it asks int8 to beat float by that many points
-        raise QfitError(f"--max-drop: must be a finite number of points, got {options.max_drop_pt}")
+    gates.check_gate_options(gate_options(options))

@@ -13,6 +13,9 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from qfit.memory import budget
+from qfit.report.build import build_budget_report
+from qfit.report.markdown import markdown
+from qfit.report.text import summary_text
 from qfit.quant import qdq_read
 from qfit.errors import QfitError
 from qfit.graph.load import prepare_model
@@ -228,9 +231,9 @@ def test_to_dict_has_every_section_and_key_the_report_uses():
     assert set(d["macs"]) >= {"total", "elementwise_ops", "layers"}
     assert set(d["what_if"]) >= {"resolution", "tiling", "flash"}
     assert d["sram"]["fits"] is False and d["fits"] is False
-    text = budget.render_text(result)
-    markdown = budget.render_markdown(result)
-    assert "conv2" in text and "| conv2" in markdown
+    report = build_budget_report("hand.onnx", False, result)
+    assert report["verdict"]["failed"] == ["sram"] and report["verdict"]["exit_code"] == 1
+    assert "conv2" in summary_text(report) and "| conv2" in markdown(report)
 
 
 def test_bad_options_are_one_line_errors():

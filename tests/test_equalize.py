@@ -15,7 +15,8 @@ from qfit.data import Batch
 from qfit.graph.load import prepare_model
 from qfit.quant.plan import PlanOptions, make_plan
 from qfit.quant.quantize import quantize_weight
-from qfit.search.repair import ModelBuilder
+from qfit.quant.quantize import Quantizer
+from qfit.report.build import build_report
 from qfit.runtime.sessions import Runner
 
 
@@ -126,7 +127,7 @@ def test_per_tensor_collapse_of_a_depthwise_separable_model_is_recovered_by_equa
 
     def int8_figures(model):
         stats = pipeline.calibrate(model, make_plan(model, options), calib, 16, False)
-        _, quantized = ModelBuilder(model, stats, "minmax", 99.99).build(options)
+        _, quantized = Quantizer(model, stats, "minmax", 99.99).build(options)
         got = Runner(quantized.model, ["y"], faithful=True, batch_size=16)({"x": test})["y"]
         sums = ErrorSums()
         sums.update(reference, got)
@@ -202,7 +203,7 @@ def test_bias_correction_subtracts_the_weight_error_times_the_mean_input_and_rem
     options = PlanOptions(per_channel=False)
     plan = make_plan(loaded, options)
     stats = pipeline.calibrate(loaded, plan, calib, 16, False)
-    builder = ModelBuilder(loaded, stats, "minmax", 99.99)
+    builder = Quantizer(loaded, stats, "minmax", 99.99)
     plan, quantized = builder.build(options)
     correction = equalize.bias_correction(loaded, plan, quantized, calib, 16)
     fix = correction.fixes["conv"]
@@ -213,7 +214,7 @@ def test_bias_correction_subtracts_the_weight_error_times_the_mean_input_and_rem
     expected = _conv_direct(mean_x, error, 1).reshape(16, -1).mean(axis=1)
     np.testing.assert_allclose(fix.shift, expected, rtol=1e-3, atol=1e-7)
 
-    corrected = ModelBuilder(correction.structure(loaded), stats, "minmax", 99.99, bias_correction=correction)
+    corrected = Quantizer(correction.structure(loaded), stats, "minmax", 99.99, bias_correction=correction)
     _, fixed = corrected.build(options)
     # pre-activation of the depthwise conv (not fused away: read the int8 model's c1 via its ReLU
     # input) -- measure the mean per-channel error of the first conv's output, before the clamp
@@ -231,7 +232,7 @@ def test_check_reports_equalization_and_bias_correction_before_and_after(tmp_pat
                                     out_dir=str(tmp_path / "out"), flash_limit_bytes=1 << 20,
                                     sram_limit_bytes=256 << 10, input_shapes=INPUT_SHAPES, progress=False,
                                     equalize=True, bias_correction=True, isolated_samples=0, per_channel=False)
-    report = pipeline.check(options).report
+    report = build_report(pipeline.check(options))
     eq, bc = report["equalization"], report["bias_correction"]
     assert eq["enabled"] and bc["enabled"]
     assert eq["pairs_equalized"] >= 1 and bc["layers_corrected"] >= 1

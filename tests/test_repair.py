@@ -17,6 +17,9 @@ from onnx import TensorProto, numpy_helper
 from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
 from qfit import cli
 from qfit import check as pipeline
+from qfit.measure.evaluate import compared_layers
+from qfit.quant.quantize import Quantizer
+from through_qfit import check_with_report
 from qfit.search import repair
 from qfit.graph.load import load_model
 from qfit.quant.plan import PlanOptions, make_plan
@@ -38,7 +41,7 @@ def _check(setup, out_name, **extra):
     options = pipeline.CheckOptions(model_path=setup["model"], calib_dir=setup["calib"], eval_dir=setup["eval"],
                                     out_dir=str(setup["root"] / out_name), input_shapes=INPUT_SHAPES, progress=False,
                                     per_channel=False, isolated_samples=32, **fields)
-    return pipeline.check(options)
+    return check_with_report(options)
 
 
 @pytest.fixture(scope="module")
@@ -122,12 +125,12 @@ def builder(setup):
                                     flash_limit_bytes=1, sram_limit_bytes=1, progress=False)
     calib = pipeline.open_data(setup["calib"], loaded, options, "calibration")
     stats = pipeline.calibrate(loaded, make_plan(loaded, PlanOptions()), calib, 16, False)
-    return repair.ModelBuilder(loaded, stats, "percentile", 99.99, calib, 16)
+    return Quantizer(loaded, stats, "percentile", 99.99, calib, 16)
 
 
 def _row(builder, name):
     plan = builder.plan(PlanOptions())
-    return next(r for r in pipeline.compared_layers(builder.loaded, plan) if r["name"] == name), plan
+    return next(r for r in compared_layers(builder.loaded, plan) if r["name"] == name), plan
 
 
 def test_keep_float_writes_the_layer_and_its_fused_relu_in_float(builder):
@@ -167,7 +170,7 @@ def test_fallback_cost_of_keeping_the_classifier_float_matches_a_hand_count(buil
     # its quantizer: -5 B. SRAM: the 10 logits grow by 30 B, far below the 3 KiB conv peak.
     counter = repair.ByteCounter(builder.loaded, __import__("qfit.memory.budget", fromlist=["x"]).BudgetOptions())
     plan = builder.plan(PlanOptions())
-    costs = repair.fallback_costs(builder, PlanOptions(), pipeline.compared_layers(builder.loaded, plan), counter)
+    costs = repair.fallback_costs(builder, PlanOptions(), compared_layers(builder.loaded, plan), counter)
     gemm = costs["/classifier/Gemm"]
     assert gemm["float"] == {"flash": 1320 - 410 - 5, "sram": 0}
     # int16 output: the zero point grows by one byte; SRAM unchanged below the peak
@@ -193,7 +196,7 @@ def test_cli_flags_reach_the_report_and_a_bad_value_is_one_line(setup, tmp_path,
 
 
 def test_a_score_output_has_no_drop_to_repair_and_the_report_says_so(tmp_path):
-    # A 4-D output is a score map, not classes (qfit.pipeline.output_kind): --max-drop cannot apply.
+    # A 4-D output is a score map, not classes (qfit.measure.evaluate.output_kind): --max-drop cannot apply.
     import through_qfit
     from onnx import helper
     rng = np.random.default_rng(0)

@@ -8,6 +8,8 @@ from onnx import TensorProto, helper, numpy_helper
 
 from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
 from qfit import check as pipeline
+from qfit.measure.evaluate import compared_layers
+from through_qfit import check_with_report
 from qfit.measure import sensitivity
 from qfit.measure.compare import ErrorSums
 from qfit.data import Batch
@@ -28,7 +30,7 @@ def _check(model_path, folders, out, **extra):
     options = pipeline.CheckOptions(model_path=str(model_path), calib_dir=calib, eval_dir=evaluation, out_dir=str(out),
                                     flash_limit_bytes=1 << 20, sram_limit_bytes=256 << 10,
                                     input_shapes=INPUT_SHAPES, progress=False, **extra)
-    return pipeline.check(options)
+    return check_with_report(options)
 
 
 # ---- the drop and its interval, computed independently of qfit.measure.compare ----------------
@@ -149,7 +151,7 @@ def test_switch_model_with_every_switch_on_is_the_int8_model_and_off_the_float_m
     rng = np.random.default_rng(1)
     xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(6)]
     loaded, plan, quantized = _quantized(_conv_chain(), xs)
-    layers = pipeline.compared_layers(loaded, plan)
+    layers = compared_layers(loaded, plan)
     switch = sensitivity.build_switch_model(loaded, plan, quantized, layers)
     runner = sensitivity.SwitchRunner(switch, ["y"], batch_size=1)
     so = ort.SessionOptions()
@@ -170,7 +172,7 @@ def test_isolated_error_equals_accumulated_error_for_the_first_layer():
     rng = np.random.default_rng(2)
     xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(8)]
     loaded, plan, quantized = _quantized(_conv_chain(), xs)
-    layers = pipeline.compared_layers(loaded, plan)
+    layers = compared_layers(loaded, plan)
     swept = sensitivity.sweep(loaded, plan, quantized, layers, _Samples(xs), 4, "score", sample_cap=8)
     accumulated = ErrorSums()
     float_runner = Runner(loaded.model, ["r1"])
@@ -191,7 +193,7 @@ def test_without_labels_the_sensitivity_is_argmax_agreement_with_the_float_model
     data = _Samples([x[None] for x in xs], name)
     stats = pipeline.calibrate(loaded, plan, data, 8, False)
     quantized = build_qdq(loaded, plan, calibrated_ranges(plan, stats, "percentile", 99.99))
-    layers = pipeline.compared_layers(loaded, plan)
+    layers = compared_layers(loaded, plan)
     swept = sensitivity.sweep(loaded, plan, quantized, layers, data, 8, "classification", sample_cap=16)
     assert swept["metric"] == "agreement_drop_pt" and swept["samples_used"] == 16
     row = swept["rows"][swept["ranking"][0]]

@@ -30,6 +30,7 @@ from onnx.reference import ReferenceEvaluator
 
 from qfit import cli
 from qfit import check as pipeline
+from qfit.report.build import build_report
 from qfit.runtime.sessions import Runner, batch_free
 
 UNLIMITED = str(1 << 30)  # flash / SRAM limits that every test model fits
@@ -91,7 +92,23 @@ def check(model: onnx.ModelProto, tmp_path: pathlib.Path, name: str = "model", s
     result = pipeline.check(pipeline.CheckOptions(
         model_path=str(model_path), calib_dir=str(calib), out_dir=str(out), flash_limit_bytes=1 << 30,
         sram_limit_bytes=1 << 30, progress=False, **options))
-    return Checked(result.exit_code, result.report, result.quantized.model, result, calib, model_path)
+    return Checked(result.exit_code, build_report(result), result.quantized.model, result, calib, model_path)
+
+
+@dataclass
+class Reported:
+    """A library check's result (qfit.check.CheckResult) with its report dict (qfit.report.build)."""
+
+    result: pipeline.CheckResult
+    report: dict
+
+    def __getattr__(self, name):
+        return getattr(self.result, name)
+
+
+def check_with_report(options: pipeline.CheckOptions) -> Reported:
+    result = pipeline.check(options)
+    return Reported(result, build_report(result))
 
 
 # ---- agreement with onnx.reference ---------------------------------------------------------------

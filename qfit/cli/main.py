@@ -41,14 +41,18 @@ def add_model_and_limits(p: argparse.ArgumentParser, model_help: str) -> None:
                    help="fix the dimensions of an input (repeatable)")
 
 
-def build_parser() -> argparse.ArgumentParser:
-    from qfit.cli import budget as budget_command, check as check_command
+def _commands() -> dict:
+    """Subcommand name -> its module (each has add_parser(sub) and run(args))."""
+    from qfit.cli import budget, check, export
+    return {"check": check, "budget": budget, "export": export}
 
+
+def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="qfit", description="int8 post-training quantization with a microcontroller fit verdict")
     parser.add_argument("--version", action="version", version=f"qfit {__version__}")
     sub = parser.add_subparsers(dest="command", parser_class=_Parser)
-    check_command.add_parser(sub)
-    budget_command.add_parser(sub)
+    for command in _commands().values():
+        command.add_parser(sub)
     return parser
 
 
@@ -63,8 +67,6 @@ def _on_signal(signum, frame):
 
 
 def main(argv: list[str] | None = None) -> int:
-    from qfit.cli import budget as budget_command, check as check_command
-
     # A shell starting qfit as a background job (as CI does) ignores SIGINT for it; install the
     # handler explicitly so an interrupt always ends the run cleanly.
     signal.signal(signal.SIGTERM, _on_signal)
@@ -74,11 +76,11 @@ def main(argv: list[str] | None = None) -> int:
         parser = build_parser()
         args = parser.parse_args(argv)
         boundary.check_options(args)
-        commands = {"check": check_command.run, "budget": budget_command.run}
+        commands = _commands()
         if args.command not in commands:
             parser.print_help()
             return EXIT_BAD_INPUT
-        return commands[args.command](args)
+        return commands[args.command].run(args)
     except QfitError as e:
         print(f"qfit: error: {_one_line(boundary.user_message(str(e)))}", file=sys.stderr)
         return EXIT_BAD_INPUT

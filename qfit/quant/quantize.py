@@ -19,9 +19,11 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
+from qfit.errors import QfitError
 from qfit.graph.load import LoadedModel
-from qfit.quant.observe import TensorStats, range_for
-from qfit.quant.plan import Plan
+from qfit.quant.observe import TensorStats, observe, range_for
+from qfit.quant.plan import Plan, PlanOptions, make_plan
+from qfit.runtime.sessions import Runner
 from qfit.quant.scale_floor import floor_activation_scale, floor_weight_scale
 
 INT_RANGE = {8: (-128, 127), 16: (-32768, 32767)}
@@ -46,7 +48,6 @@ class QuantizedModel:
     model: onnx.ModelProto
     activations: dict[str, ActivationParams] = field(default_factory=dict)
     weight_scales: dict[tuple[str, int], np.ndarray] = field(default_factory=dict)
-    weight_error: dict[tuple[str, int], float] = field(default_factory=dict)  # max |W - W'| / scale
     dequantized: dict[str, str] = field(default_factory=dict)  # tensor -> name of its int8 value, dequantized
 
 
@@ -114,7 +115,7 @@ def qdq_opset_imports(model: onnx.ModelProto) -> list[onnx.OperatorSetIdProto]:
             if node.domain in ("", "ai.onnx"):
                 try:
                     needed = max(needed, onnx.defs.get_schema(node.op_type, imp.version, "").since_version)
-                except Exception:  # an op onnx does not know here: keep the model's opset
+                except onnx.defs.SchemaError:  # an op onnx does not know here: keep the model's opset
                     needed = imp.version
         imports.append(helper.make_opsetid(imp.domain, min(needed, imp.version)))
     return imports
@@ -187,10 +188,6 @@ def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, fl
                 wq = plan.weights[key]
                 qw, scale = quantize_weight(loaded.constants[inp], wq.axis, wq.bits)
                 result.weight_scales[key] = scale
-                deq = qw.astype(np.float32) * (scale if wq.axis is None else
-                                               scale.reshape([-1 if d == wq.axis else 1 for d in range(qw.ndim)]))
-                result.weight_error[key] = float(np.max(np.abs(deq - loaded.constants[inp]) /
-                                                        np.maximum(np.max(scale), 1e-30))) if qw.size else 0.0
                 qname = add_init(qw, f"{inp}_{node.name}_quantized")
                 sname = add_init(scale, f"{inp}_{node.name}_scale")
                 zname = add_init(np.zeros(scale.shape, INT_TYPE[wq.bits][0]), f"{inp}_{node.name}_zero_point")
@@ -232,3 +229,58 @@ def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, fl
         model.metadata_props.append(prop)
     result.model = model
     return result
+
+
+# ---- the one way from precision choices to a QDQ model ---------------------------------------------
+
+class Quantizer:
+    """PlanOptions -> (Plan, QDQ model), for one float graph and its calibration statistics.
+
+    The pipeline, the repair search and the sensitivity costs all build their models through this.
+    A plan that quantizes a tensor the first calibration pass did not observe (e.g. the output of a
+    MaxPool that no longer shares an int16 input's quantizer) gets one more pass over `calib`; those
+    statistics stay in this quantizer (it copies the ones it is given, so two quantizers never share
+    a dict) and `extra_calibration_passes` counts the passes.
+    """
+
+    def __init__(self, loaded: LoadedModel, stats: dict[str, TensorStats], method: str, percentile: float,
+                 calib=None, batch_size: int = 16, bias_correction=None, threads: int = 0):
+        self.loaded = loaded
+        self.method = method
+        self.percentile = percentile
+        self.calib = calib                      # calibration DataFolder, for tensors a new plan needs
+        self.batch_size = batch_size
+        self.bias_correction = bias_correction  # qfit.quant.equalize.BiasCorrection or None
+        self.threads = threads
+        self._stats = dict(stats)
+        self.extra_calibration_passes = 0
+
+    @property
+    def stats(self) -> dict[str, TensorStats]:
+        """A copy of the statistics this quantizer holds (for a quantizer of a changed graph)."""
+        return dict(self._stats)
+
+    def plan(self, options: PlanOptions) -> Plan:
+        return make_plan(self.loaded, options)
+
+    def _observe_missing(self, plan: Plan) -> None:
+        missing = [t for t in plan.calibrated_tensors() if t not in self._stats]
+        if not missing:
+            return
+        if self.calib is None:
+            raise QfitError(f"calibration: no statistics for tensor '{missing[0]}' and no calibration data")
+        runner = Runner(self.loaded.model, missing, batch_size=self.batch_size, threads=self.threads)
+        self._stats.update(observe(runner, self.calib.batches(self.batch_size), missing))
+        self.extra_calibration_passes += 1
+
+    def build(self, options: PlanOptions) -> tuple[Plan, QuantizedModel]:
+        return self.build_plan(self.plan(options))
+
+    def build_plan(self, plan: Plan) -> tuple[Plan, QuantizedModel]:
+        self._observe_missing(plan)
+        ranges = calibrated_ranges(plan, self._stats, self.method, self.percentile)
+        source = self.loaded
+        if self.bias_correction is not None and self.bias_correction.fixes:
+            from qfit.graph.model import with_constants
+            source = with_constants(self.loaded, self.bias_correction.values_for(plan))
+        return plan, build_qdq(source, plan, ranges)

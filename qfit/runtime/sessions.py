@@ -1,4 +1,4 @@
-"""run: onnxruntime sessions for the float model and for the QDQ model, batched.
+"""sessions: onnxruntime sessions for the float model and for the QDQ model, batched.
 
 Two arithmetic paths exist for a QDQ model in onnxruntime:
   * "fused": default optimizations fuse DQ -> Conv -> Q into an int8 kernel. On x86 without VNNI
@@ -15,27 +15,26 @@ import onnx
 import onnxruntime as ort
 import numpy as np
 from onnx import TensorProto, helper
+from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
+
+# What onnxruntime raises when it cannot build or run a session (none of them derives from another).
+ORT_ERRORS = (_ort_state.Fail, _ort_state.InvalidArgument, _ort_state.InvalidGraph, _ort_state.NotImplemented,
+              _ort_state.RuntimeException)
 
 FAITHFUL_PATH = ("onnxruntime CPU with QDQ fusion disabled (session.disable_quant_qdq=1): int8 values "
                  "dequantized exactly, products summed in float32, matching 32-bit integer accumulation")
 
-_threads = {"intra": 0}
 
-
-def set_threads(n: int) -> None:
-    """Threads per onnxruntime session (0 = onnxruntime's default)."""
-    _threads["intra"] = max(0, int(n))
-
-
-def _options(faithful: bool) -> ort.SessionOptions:
+def session_options(faithful: bool, threads: int = 0) -> ort.SessionOptions:
+    """onnxruntime options for one session; `threads` = intra-op threads (0 = onnxruntime's default)."""
     so = ort.SessionOptions()
     so.log_severity_level = 4  # the batch probe fails by design on fixed-batch graphs: keep it quiet
     # Workers that busy-wait between operators take the cores from the numpy thread that bins or
-    # sums the previous batch meanwhile (qfit.observe, qfit.pipeline.evaluate), and from anything
+    # sums the previous batch meanwhile (qfit.quant.observe, qfit.measure.evaluate), and from anything
     # else running on a laptop; they sleep instead.
     so.add_session_config_entry("session.intra_op.allow_spinning", "0")
-    if _threads["intra"]:
-        so.intra_op_num_threads = _threads["intra"]
+    if threads and threads > 0:
+        so.intra_op_num_threads = int(threads)
         so.inter_op_num_threads = 1
     if faithful:
         so.add_session_config_entry("session.disable_quant_qdq", "1")
@@ -73,28 +72,33 @@ class Runner:
 
     Batches larger than 1 run through a batch-free copy of the model when that copy produces the
     right shapes (a model that hard-codes its batch in a Reshape does not); otherwise sample by sample.
+    `unbatched` names graph inputs fed the same value for the whole batch (qfit.measure.sensitivity's
+    boolean switches); they are passed to each call as `constants`.
     """
 
     def __init__(self, model: onnx.ModelProto, outputs: list[str], faithful: bool = False,
-                 batch_size: int = 16):
+                 batch_size: int = 16, threads: int = 0, unbatched: tuple[str, ...] | list[str] = ()):
         self.outputs = list(outputs)
         self.faithful = faithful
+        self.threads = threads
+        self.unbatched = tuple(unbatched)
         self._extended = with_outputs(model, self.outputs)
         self._session = None
         self.batched = None
         if batch_size > 1:
             try:
                 candidate = ort.InferenceSession(batch_free(self._extended).SerializeToString(),
-                                                 _options(faithful), providers=["CPUExecutionProvider"])
+                                                 session_options(faithful, threads),
+                                                 providers=["CPUExecutionProvider"])
                 if self._batch_works(candidate):
                     self.batched = candidate
-            except Exception:
+            except ORT_ERRORS:  # onnxruntime rejects the batch-free copy: run sample by sample
                 self.batched = None
         if self.batched is None:
             self._session = self._fixed_session()
 
     def _fixed_session(self) -> ort.InferenceSession:
-        return ort.InferenceSession(self._extended.SerializeToString(), _options(self.faithful),
+        return ort.InferenceSession(self._extended.SerializeToString(), session_options(self.faithful, self.threads),
                                     providers=["CPUExecutionProvider"])
 
     @property
@@ -106,31 +110,43 @@ class Runner:
             self._session = self._fixed_session()
         return self._session
 
+    def _probe_constants(self) -> dict[str, np.ndarray]:
+        values = {}
+        for inp in self._extended.graph.input:
+            if inp.name in self.unbatched:
+                dtype = onnx.helper.tensor_dtype_to_np_dtype(inp.type.tensor_type.elem_type)
+                values[inp.name] = np.zeros([d.dim_value for d in inp.type.tensor_type.shape.dim], dtype)
+        return values
+
     def _batch_works(self, session: ort.InferenceSession) -> bool:
         # Batch 2 must give batch-2 outputs with the per-sample shapes of batch 1 (a model that
         # hard-codes its batch in a Reshape does not). The model's own input shapes give the
         # per-sample shapes, so the fixed-shape session is not needed for this check.
         feeds = {}
-        constants = {i.name for i in self._extended.graph.initializer}
+        constants = {i.name for i in self._extended.graph.initializer} | set(self.unbatched)
         for inp in self._extended.graph.input:
             if inp.name in constants:
                 continue
             dims = inp.type.tensor_type.shape.dim
             shape = [d.dim_value if d.HasField("dim_value") else 1 for d in dims]
             feeds[inp.name] = np.zeros([2] + shape[1:], np.float32)
+        fixed = self._probe_constants()
         try:
-            got = session.run(self.outputs, feeds)
-            single = session.run(self.outputs, {k: v[:1] for k, v in feeds.items()})
-        except Exception:
+            got = session.run(self.outputs, {**feeds, **fixed})
+            single = session.run(self.outputs, {**{k: v[:1] for k, v in feeds.items()}, **fixed})
+        except ORT_ERRORS:  # any failure of the probe means: do not batch
             return False
         return all(g.shape[:1] == (2,) and g.shape[1:] == s.shape[1:] and s.shape[:1] == (1,)
                    for g, s in zip(got, single))
 
-    def __call__(self, inputs: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    def __call__(self, inputs: dict[str, np.ndarray],
+                 constants: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+        constants = constants or {}
         n = next(iter(inputs.values())).shape[0]
         if n == 1 or self.batched is not None:
             session = self.session if n == 1 else self.batched
-            values = session.run(self.outputs, inputs)
+            values = session.run(self.outputs, {**inputs, **constants})
             return dict(zip(self.outputs, values))
-        parts = [self.session.run(self.outputs, {k: v[i:i + 1] for k, v in inputs.items()}) for i in range(n)]
+        parts = [self.session.run(self.outputs, {**{k: v[i:i + 1] for k, v in inputs.items()}, **constants})
+                 for i in range(n)]
         return {name: np.concatenate([p[j] for p in parts], axis=0) for j, name in enumerate(self.outputs)}

@@ -23,11 +23,10 @@ from typing import Callable
 
 import numpy as np
 
-from qfit.errors import QfitError
 from qfit.graph.load import TARGET_OPSET, LoadedModel
-from qfit.quant.observe import TensorStats, observe
-from qfit.quant.plan import METHODS, Plan, PlanOptions, make_plan
-from qfit.quant.quantize import QuantizedModel, build_qdq, calibrated_ranges
+from qfit.memory import budget
+from qfit.quant.plan import METHODS, Plan, PlanOptions
+from qfit.quant.quantize import QuantizedModel, Quantizer
 from qfit.runtime.sessions import Runner
 from qfit.sizes import format_size
 
@@ -40,59 +39,19 @@ DEFAULT_SCREEN_EXTRA = 64        # lowest-margin samples screened besides the on
 DEFAULT_VERIFIED_PER_STEP = 3    # best-screened candidates measured on every search sample
 
 
-# ---- from PlanOptions to a QDQ model ---------------------------------------------------------------
-
-@dataclass
-class ModelBuilder:
-    """Everything that turns a PlanOptions into a QDQ model: the graph, the calibration statistics and
-    the run's method, and (optionally) corrected biases for the layers a plan quantizes."""
-
-    loaded: LoadedModel
-    stats: dict[str, TensorStats]
-    method: str
-    percentile: float
-    calib: object | None = None      # calibration DataFolder, for tensors a new plan needs
-    batch_size: int = 16
-    bias_correction: object | None = None  # qfit.equalize.BiasCorrection
-    extra_calibration_passes: int = 0
-
-    def plan(self, options: PlanOptions) -> Plan:
-        return make_plan(self.loaded, options)
-
-    def ensure_stats(self, plan: Plan) -> None:
-        """Observe the tensors a plan quantizes that the first calibration pass did not (e.g. the
-        output of a MaxPool that no longer shares an int16 input's quantizer)."""
-        missing = [t for t in plan.calibrated_tensors() if t not in self.stats]
-        if not missing:
-            return
-        if self.calib is None:
-            raise QfitError(f"calibration: no statistics for tensor '{missing[0]}' and no calibration data")
-        runner = Runner(self.loaded.model, missing, batch_size=self.batch_size)
-        self.stats.update(observe(runner, self.calib.batches(self.batch_size), missing))
-        self.extra_calibration_passes += 1
-
-    def build(self, options: PlanOptions) -> tuple[Plan, QuantizedModel]:
-        plan = self.plan(options)
-        self.ensure_stats(plan)
-        ranges = calibrated_ranges(plan, self.stats, self.method, self.percentile)
-        source = self.loaded
-        if self.bias_correction is not None and self.bias_correction.fixes:
-            from qfit.quant.equalize import with_constants
-            source = with_constants(self.loaded, self.bias_correction.values_for(plan))
-        return plan, build_qdq(source, plan, ranges)
-
-
 # ---- byte costs ------------------------------------------------------------------------------------
 
 class ByteCounter:
-    """Flash total and SRAM peak of a plan, from qfit.budget, cached per precision choice."""
+    """Flash total and SRAM peak of a plan, from qfit.memory.budget, cached per precision choice, so
+    the budget of a plan is analysed once (`record` adds a plan the pipeline analysed in full)."""
 
-    def __init__(self, loaded: LoadedModel, budget_options):
-        from qfit.memory import budget
-        self._budget = budget
+    def __init__(self, loaded: LoadedModel, budget_options: budget.BudgetOptions):
         self.loaded = loaded
         self.options = replace(budget_options, what_if=False)
         self._cache: dict[tuple, tuple[int, int]] = {}
+
+    def record(self, plan: Plan, result: budget.BudgetResult) -> None:
+        self._cache[self.key(plan)] = (int(result.flash["total_bytes"]), int(result.sram["peak_bytes"]))
 
     @staticmethod
     def key(plan: Plan) -> tuple:
@@ -103,7 +62,7 @@ class ByteCounter:
     def __call__(self, plan: Plan) -> tuple[int, int]:
         key = self.key(plan)
         if key not in self._cache:
-            result = self._budget.analyze(self.loaded, plan, self.options)
+            result = budget.analyze(self.loaded, plan, self.options)
             self._cache[key] = (int(result.flash["total_bytes"]), int(result.sram["peak_bytes"]))
         return self._cache[key]
 
@@ -181,7 +140,7 @@ def _int16_available(loaded: LoadedModel) -> bool:
     return False
 
 
-def fallback_costs(builder: ModelBuilder, base: PlanOptions, layers: list[dict], counter: ByteCounter) -> dict:
+def fallback_costs(builder: Quantizer, base: PlanOptions, layers: list[dict], counter: ByteCounter) -> dict:
     """Per layer row: extra flash and SRAM bytes of keeping it float / storing its output as int16,
     each against the all-int8 plan (None where the repair does not apply)."""
     base_plan = builder.plan(base)
@@ -216,11 +175,13 @@ class DropMeter:
     runs only a gathered subset of samples (see `screen`).
     """
 
-    def __init__(self, reference: LoadedModel, data, batch_size: int, max_cached_bytes: int = 256 << 20):
+    def __init__(self, reference: LoadedModel, data, batch_size: int, max_cached_bytes: int = 256 << 20,
+                 threads: int = 0):
         self.output = reference.output_names[0]
         self.batch_size = batch_size
+        self.threads = threads
         self.data = data
-        runner = Runner(reference.model, [self.output], batch_size=batch_size)
+        runner = Runner(reference.model, [self.output], batch_size=batch_size, threads=threads)
         float_top1, labels = [], []
         self.cached: list | None = []
         cached_bytes = 0
@@ -247,7 +208,7 @@ class DropMeter:
 
     def _run(self, quantized: QuantizedModel, batches) -> Predictions:
         name = quantized.dequantized.get(self.output, self.output)
-        runner = Runner(quantized.model, [name], faithful=True, batch_size=self.batch_size)
+        runner = Runner(quantized.model, [name], faithful=True, batch_size=self.batch_size, threads=self.threads)
         top1, margin = [], []
         for inputs in batches:
             out = runner(inputs)[name]
@@ -330,7 +291,7 @@ def _over(value: int, limit: int | None) -> int:
     return 0 if limit is None else max(0, value - limit)
 
 
-def greedy_repair(builder: ModelBuilder, base: PlanOptions, ranked_rows: list[dict], meter: DropMeter,
+def greedy_repair(builder: Quantizer, base: PlanOptions, ranked_rows: list[dict], meter: DropMeter,
                   counter: ByteCounter, target_drop_pt: float, flash_limit_bytes: int | None,
                   sram_limit_bytes: int | None, layers_tried: int = DEFAULT_LAYERS_TRIED,
                   max_steps: int = DEFAULT_MAX_STEPS, screen_extra_samples: int = DEFAULT_SCREEN_EXTRA,
