@@ -2,7 +2,7 @@
 
 `GraphIndex` answers the questions the stages used to answer with maps of their own: which node
 produces a tensor, which nodes read it (once per input slot, in graph order), how often it is used,
-its static shape and element count, and a name no tensor or node has yet.
+and a name no tensor or node has yet.
 """
 from __future__ import annotations
 
@@ -14,7 +14,6 @@ import onnx
 from onnx import TensorProto, numpy_helper
 
 from qfit import ops
-from qfit.ops import numel
 
 
 class FreshNames:
@@ -35,10 +34,9 @@ class GraphIndex:
     """Producers, consumers and names of one graph. Build it after the graph's last edit: it does not
     follow later changes."""
 
-    def __init__(self, graph: onnx.GraphProto, shapes: dict | None = None):
+    def __init__(self, graph: onnx.GraphProto):
         self.graph = graph
         self.nodes: list[onnx.NodeProto] = list(graph.node)
-        self.shapes = shapes if shapes is not None else {}
         self.output_names = [o.name for o in graph.output]
         self.initializer_names = {i.name for i in graph.initializer}
         self._producer: dict[str, int] = {}
@@ -75,10 +73,6 @@ class GraphIndex:
         """Input slots reading `tensor`, plus one per graph output that is `tensor`."""
         return len(self._readers.get(tensor, [])) + self.output_names.count(tensor)
 
-    def numel(self, tensor: str) -> int:
-        """Elements of `tensor` from its static shape (0 when unknown)."""
-        return numel(self.shapes.get(tensor))
-
     def fresh_names(self) -> FreshNames:
         """A name source that avoids every graph input, initializer and node output."""
         taken = set(self._producer) | self.initializer_names | {i.name for i in self.graph.input}
@@ -112,7 +106,7 @@ class LoadedModel:
 
     @cached_property
     def index(self) -> GraphIndex:
-        return GraphIndex(self.model.graph, self.shapes)
+        return GraphIndex(self.model.graph)
 
     def shape_of(self, name: str):
         return self.shapes.get(name)

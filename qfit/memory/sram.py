@@ -14,6 +14,7 @@ from qfit.memory import schedule
 from qfit.memory.flash import FLOAT_BYTES, ratio
 from qfit.memory.options import BudgetOptions
 from qfit.quant.plan import Plan
+from qfit.sizes import element_count
 
 
 def _itemsize(elem_type: int) -> int:
@@ -36,7 +37,7 @@ def stored_tensor(loaded: LoadedModel, plan: Plan, shapes: dict, tensor: str) ->
     if tensor in plan.fused:
         return 0, "fused"
     bits = plan.bits_of(tensor)
-    n = ops.numel(shapes.get(tensor))
+    n = element_count(shapes.get(tensor))
     if bits:
         return n * (bits // 8), f"int{bits}"
     elem = loaded.elem_types.get(tensor, TensorProto.FLOAT)
@@ -167,7 +168,7 @@ def _conversion_bytes(node, plan: Plan, shapes: dict, constants: dict) -> int:
     total = 0
     for name in list(node.input) + list(node.output):
         if name and name not in constants and plan.bits_of(name):
-            total += ops.numel(shapes.get(name)) * FLOAT_BYTES
+            total += element_count(shapes.get(name)) * FLOAT_BYTES
     return total
 
 

@@ -25,7 +25,7 @@ from qfit.memory.cost import macs_section
 from qfit.memory.options import BudgetOptions
 from qfit.memory.sram import MemoryModel, build_memory_model, sram_for
 from qfit.quant.plan import Plan
-from qfit.sizes import format_size
+from qfit.sizes import element_count, format_size
 
 RESOLUTION_STEPS = (8, 16)
 MAX_RESOLUTION_TRIES = 48
@@ -75,7 +75,7 @@ def _light_model(loaded: LoadedModel) -> onnx.ModelProto:
     graph.input.extend(loaded.graph.input)
     graph.output.extend(loaded.graph.output)
     for init in loaded.graph.initializer:
-        if init.data_type in (TensorProto.FLOAT, TensorProto.FLOAT16) and ops.numel(init.dims) >= 64:
+        if init.data_type in (TensorProto.FLOAT, TensorProto.FLOAT16) and element_count(init.dims) >= 64:
             graph.input.append(helper.make_tensor_value_info(init.name, init.data_type, list(init.dims)))
         else:
             graph.initializer.append(init)

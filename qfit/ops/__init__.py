@@ -28,7 +28,7 @@ from onnx import NodeProto
 
 from qfit.ops import activation, conv, elementwise, gemm, movement, normalization, pool, shape, structural  # noqa: F401  (registers)
 from qfit.ops.registry import (FLOAT_OP, OPS, ConstantOf, Equalization, IsConstant, Op, ShapeOf,  # noqa: F401
-                               Window, attr, attr_text, lookup, numel)
+                               Window, attr, attr_text, lookup)
 from qfit.ops.structural import QDQ_OPS  # noqa: F401
 
 

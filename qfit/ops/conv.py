@@ -4,8 +4,9 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto, TensorProto, helper, numpy_helper
 
-from qfit.ops.registry import Equalization, Op, ShapeOf, attr, numel, register
+from qfit.ops.registry import Equalization, Op, ShapeOf, attr, register
 from qfit.ops.windows import has_padding, tileable_by, window
+from qfit.sizes import element_count
 
 
 def _conv_macs(node: NodeProto, shape_of: ShapeOf) -> int:
@@ -14,7 +15,7 @@ def _conv_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     if w is None or y is None:
         return 0
     # y: N, Cout, spatial...; w: Cout, Cin/groups, k...  -> each output element costs Cin/g * prod(k)
-    return numel(y) * int(np.prod(w[1:]))
+    return element_count(y) * int(np.prod(w[1:]))
 
 
 def _conv_transpose_macs(node: NodeProto, shape_of: ShapeOf) -> int:
@@ -23,7 +24,7 @@ def _conv_transpose_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     if w is None or x is None:
         return 0
     # w: Cin, Cout/groups, k...; every input element is scattered into Cout/g * prod(k) outputs
-    return numel(x) * int(np.prod(w[1:]))
+    return element_count(x) * int(np.prod(w[1:]))
 
 
 def _axis0(node: NodeProto, shape) -> int | None:
@@ -49,7 +50,7 @@ def _conv_scratch_bytes(node: NodeProto, shape_of: ShapeOf, element_bytes: int) 
     w = shape_of(node.input[1])
     if not w or len(w) < 3:
         return 0
-    kernel = numel(w[2:])
+    kernel = element_count(w[2:])
     strides = attr(node, "strides", [1] * (len(w) - 2))
     pads = attr(node, "pads", [0] * 2 * (len(w) - 2))
     if kernel == 1 and all(s == 1 for s in strides) and not any(pads):

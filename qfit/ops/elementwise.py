@@ -4,11 +4,12 @@ from __future__ import annotations
 
 from onnx import NodeProto
 
-from qfit.ops.registry import Op, ShapeOf, numel, register
+from qfit.ops.registry import Op, ShapeOf, register
+from qfit.sizes import element_count
 
 
 def elementwise_ops(node: NodeProto, shape_of: ShapeOf) -> int:
-    return numel(shape_of(node.output[0]))
+    return element_count(shape_of(node.output[0]))
 
 
 def tileable_pointwise(node: NodeProto, shape_of: ShapeOf, is_constant) -> bool:

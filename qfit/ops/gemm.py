@@ -4,7 +4,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.registry import Equalization, Op, ShapeOf, attr, numel, register
+from qfit.ops.registry import Equalization, Op, ShapeOf, attr, register
+from qfit.sizes import element_count
 
 
 def _gemm_macs(node: NodeProto, shape_of: ShapeOf) -> int:
@@ -13,7 +14,7 @@ def _gemm_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     if a is None or y is None:
         return 0
     k = a[0] if attr(node, "transA", 0) else a[-1]
-    return numel(y) * int(k)
+    return element_count(y) * int(k)
 
 
 def _matmul_macs(node: NodeProto, shape_of: ShapeOf) -> int:
@@ -21,7 +22,7 @@ def _matmul_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     y = shape_of(node.output[0])
     if a is None or y is None:
         return 0
-    return numel(y) * int(a[-1])
+    return element_count(y) * int(a[-1])
 
 
 def _gemm_axis(node: NodeProto, shape) -> int | None:

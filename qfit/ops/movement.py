@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.registry import Op, ShapeOf, attr, attr_text, numel, register
+from qfit.ops.registry import Op, ShapeOf, attr, attr_text, register
+from qfit.sizes import element_count
 
 
 def _resize_is_nearest(node: NodeProto) -> bool:
@@ -16,7 +17,9 @@ def _resize_is_nearest(node: NodeProto) -> bool:
 
 def _same_element_count(node: NodeProto, inputs: list, output) -> bool:
     # a view keeps every element: a Reshape to a fixed element count cannot run at another size
-    return not (inputs and inputs[0] is not None and output is not None and numel(inputs[0]) != numel(output))
+    if not inputs or inputs[0] is None or output is None:
+        return True
+    return element_count(inputs[0]) == element_count(output)
 
 
 def _tileable_channel_concat(node: NodeProto, shape_of: ShapeOf, is_constant) -> bool:

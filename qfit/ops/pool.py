@@ -5,17 +5,18 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.registry import Op, ShapeOf, attr, numel, register
+from qfit.ops.registry import Op, ShapeOf, attr, register
 from qfit.ops.windows import pool_window, tileable_by
+from qfit.sizes import element_count
 
 
 def _window_ops(node: NodeProto, shape_of: ShapeOf) -> int:
     kernel = attr(node, "kernel_shape", [1])
-    return numel(shape_of(node.output[0])) * int(np.prod(kernel))
+    return element_count(shape_of(node.output[0])) * int(np.prod(kernel))
 
 
 def _reduce_ops(node: NodeProto, shape_of: ShapeOf) -> int:
-    return numel(shape_of(node.input[0]))
+    return element_count(shape_of(node.input[0]))
 
 
 _WINDOWED = dict(cost=_window_ops, cost_kind="elementwise", window=pool_window, tileable=tileable_by(pool_window))

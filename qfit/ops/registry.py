@@ -8,7 +8,6 @@ counted at 4 bytes each, and the report says so.
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Callable, Mapping, Sequence
 
@@ -35,11 +34,6 @@ def attr_text(node: NodeProto, name: str, default: str) -> str:
     """A string attribute as text (onnx hands strings back as bytes)."""
     value = attr(node, name, default)
     return value.decode() if isinstance(value, bytes) else str(value)
-
-
-def numel(shape: Shape | None) -> int:
-    """Elements of a tensor of `shape`; 0 when the shape is unknown."""
-    return math.prod(int(d) for d in shape) if shape is not None else 0
 
 
 def no_cost(node: NodeProto, shape_of: ShapeOf) -> int:
