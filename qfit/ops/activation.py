@@ -41,8 +41,8 @@ def _slope_axis(node: NodeProto, shape) -> int | None:
 
 
 register({
-    "Relu": Op(output="fused", clamp_bounds=_relu_bounds, **POINTWISE),
-    "Clip": Op(output="fused", clamp_bounds=_clip_bounds, **POINTWISE),
+    "Relu": Op(output="fused", clamp_bounds=_relu_bounds, export_kind="CLAMP", **POINTWISE),
+    "Clip": Op(output="fused", clamp_bounds=_clip_bounds, export_kind="CLAMP", **POINTWISE),
     "LeakyRelu": Op(**POINTWISE),
     "PRelu": Op(weights={1: _slope_axis}, note="slope stored as int8", **POINTWISE),
     "Sigmoid": Op(**POINTWISE),

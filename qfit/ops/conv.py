@@ -95,7 +95,7 @@ register({
     "Conv": Op(weights={1: _axis0}, bias=2, cost=_conv_macs, cost_kind="macs", takes_fused_activation=True,
                absorbs_channel_affine=True, scratch_bytes=_conv_scratch_bytes, window=_conv_window,
                tileable=tileable_by(_conv_window), shapes_consistent=_conv_shapes_consistent,
-               equalization=_CONV_EQUALIZATION),
+               equalization=_CONV_EQUALIZATION, export_kind="CONV"),
     "ConvTranspose": Op(weights={1: _conv_transpose_axis}, bias=2, cost=_conv_transpose_macs, cost_kind="macs",
                         takes_fused_activation=True, absorbs_channel_affine=True),
 })

@@ -37,9 +37,9 @@ _FOLD_ONLY = Op(output="float", quantized_inputs=(), constant_foldable=True, not
 
 register({
     "Add": Op(quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, adds_bias=True,
-              **POINTWISE),
+              export_kind="ADD", **POINTWISE),
     "Sub": Op(quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, **POINTWISE),
-    "Mul": Op(quantized_inputs=_ALL, constant_foldable=True, **POINTWISE),
+    "Mul": Op(quantized_inputs=_ALL, constant_foldable=True, export_kind="MUL", **POINTWISE),
     "Div": Op(quantized_inputs=(0,), constant_inputs=(1,), constant_foldable=True,
               note="by a constant only (a multiply by its reciprocal); by a tensor it stays float", **POINTWISE),
     **{op_type: _FOLD_ONLY for op_type in ("Neg", "Sqrt", "Pow", "Min", "Max", "Floor", "Equal", "Not", "Where")},

@@ -81,8 +81,9 @@ _GEMM_EQUALIZATION = Equalization(
 register({
     "Gemm": Op(weights={1: _gemm_axis}, bias=2, cost=_gemm_macs, cost_kind="macs", takes_fused_activation=True,
                bias_scale_attr="beta", product_scale_attr="alpha", absorbs_channel_affine=True,
-               shapes_consistent=_gemm_shapes_consistent, equalization=_GEMM_EQUALIZATION),
+               shapes_consistent=_gemm_shapes_consistent, equalization=_GEMM_EQUALIZATION,
+               export_kind="FULLY_CONNECTED"),
     "MatMul": Op(weights={0: _matmul_first_operand_axis, 1: _matmul_axis}, cost=_matmul_macs, cost_kind="macs",
                  takes_fused_activation=True, quantized_inputs=None, bias_from_following_add=True,
-                 shapes_consistent=_matmul_shapes_consistent),
+                 shapes_consistent=_matmul_shapes_consistent, export_kind="FULLY_CONNECTED"),
 })

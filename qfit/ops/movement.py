@@ -36,15 +36,15 @@ _VIEW = dict(output="shared", alias="view", constant_foldable=True, shapes_consi
 
 register({
     "Concat": Op(quantized_inputs=None, inputs_share_output=True, constant_foldable=True,
-                 tileable=_tileable_channel_concat,
+                 tileable=_tileable_channel_concat, export_kind="CONCAT",
                  note="inputs stored with the output's scale (a byte copy) when only the Concat reads "
                       "them; otherwise requantized to it"),
     "Split": Op(output="shared"),
     "Slice": Op(output="shared", constant_foldable=True),
-    "Reshape": Op(**_VIEW),
-    "Flatten": Op(**_VIEW),
-    "Squeeze": Op(**_VIEW),
-    "Unsqueeze": Op(**_VIEW),
+    "Reshape": Op(export_kind="RESHAPE", **_VIEW),
+    "Flatten": Op(export_kind="RESHAPE", **_VIEW),
+    "Squeeze": Op(export_kind="RESHAPE", **_VIEW),
+    "Unsqueeze": Op(export_kind="RESHAPE", **_VIEW),
     "Transpose": Op(output="shared", constant_foldable=True),
     "Pad": Op(output="shared", note="constant pad value must be representable (0 is)"),
     "Resize": Op(quantized_inputs=(0,), shares_when=_resize_is_nearest,

@@ -24,10 +24,10 @@ _REDUCE = dict(cost=_reduce_ops, cost_kind="elementwise")
 
 register({
     # the maximum of int8 values is one of them: the input's scale holds
-    "MaxPool": Op(output="shared", **_WINDOWED),
-    "AveragePool": Op(**_WINDOWED),
-    "GlobalAveragePool": Op(**_REDUCE),
-    "GlobalMaxPool": Op(output="shared", **_REDUCE),
+    "MaxPool": Op(output="shared", export_kind="MAX_POOL", **_WINDOWED),
+    "AveragePool": Op(export_kind="AVERAGE_POOL", **_WINDOWED),
+    "GlobalAveragePool": Op(export_kind="GLOBAL_AVERAGE_POOL", **_REDUCE),
+    "GlobalMaxPool": Op(output="shared", export_kind="GLOBAL_MAX_POOL", **_REDUCE),
     "ReduceMean": Op(**_REDUCE),
     "ReduceProd": Op(output="float", quantized_inputs=(), constant_foldable=True,
                      note="not supported in int8: kept float"),

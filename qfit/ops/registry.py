@@ -75,6 +75,7 @@ class Op:
     adds_bias: bool = False                   # adding a constant: may be the bias of the layer before
     equalization: Equalization | None = None
     integer_kernel: Callable | None = None    # reserved: the integer-only kernel (qfit/ops/kernels/)
+    export_kind: str | None = None            # layer kind in the C export (report/export), None = not exported
     # -- memory and cost --
     alias: str | None = None                  # None | "view" | "inplace"
     cost: Callable[[NodeProto, ShapeOf], int] = no_cost
