@@ -42,7 +42,9 @@ from qfit.data import DataFolder  # noqa: E402
 from qfit.graph.load import prepare_model  # noqa: E402
 from qfit.quant.plan import METHODS, make_plan  # noqa: E402
 from qfit.quant.quantize import build_qdq, calibrated_ranges  # noqa: E402
-from qfit.runtime.sessions import Runner, batch_free, set_threads  # noqa: E402
+from qfit.runtime.sessions import Runner, batch_free  # noqa: E402
+
+THREADS = 0  # set from --threads in main()
 
 import zoo  # noqa: E402  (tests/zoo.py: models built with onnx.helper)
 
@@ -127,7 +129,7 @@ def timed(fn) -> float:
 def exposure_only(model: onnx.ModelProto, tensors: list[str], data: DataFolder, batch_size: int,
                   faithful: bool = False) -> None:
     """What any exposing pass pays before computing a single statistic: every tensor as an output."""
-    runner = Runner(model, tensors, batch_size=batch_size, faithful=faithful)
+    runner = Runner(model, tensors, batch_size=batch_size, faithful=faithful, threads=THREADS)
     for batch in data.batches(batch_size):
         runner(batch.inputs)
 
@@ -157,10 +159,10 @@ def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: i
         runs["inference"].append(timed(lambda: floor.inference_only(in_memory)))
         runs["exposure"].append(timed(lambda: exposure_only(loaded.model, tensors, calib, batch_size)))
         runs["minmax"].append(timed(lambda: calibrated_ranges(
-            plan, pipeline.calibrate(loaded, plan, calib, batch_size, progress=False, histograms=False),
-            "minmax", 99.99)))
+            plan, pipeline.calibrate(loaded, plan, calib, batch_size, progress=False, histograms=False,
+                                     threads=THREADS), "minmax", 99.99)))
         start = time.perf_counter()
-        stats = pipeline.calibrate(loaded, plan, calib, batch_size, progress=False)
+        stats = pipeline.calibrate(loaded, plan, calib, batch_size, progress=False, threads=THREADS)
         runs["histograms"].append(time.perf_counter() - start)
         for method in HISTOGRAM_METHODS:
             range_s[method].append(timed(lambda: calibrated_ranges(plan, stats, method, 99.99)))
@@ -203,7 +205,7 @@ def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: i
         compare_runs["int8"].append(timed(lambda: exposure_only(quantized.model, int8_names, compare_data,
                                                                 batch_size, faithful=True)))
         compare_runs["compare"].append(timed(lambda: pipeline.evaluate(
-            loaded, quantized, layers, compare_data, batch_size, progress=False)))
+            loaded, quantized, layers, compare_data, batch_size, progress=False, threads=THREADS)))
     best = fastest(compare_runs)
     value = best["compare"] / best["floor"]
     float_ratio, int8_ratio = best["float"] / best["floor"], best["int8"] / best["floor"]
@@ -471,7 +473,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--markdown", action="store_true", help="print the table as Markdown")
     args = parser.parse_args(argv)
     sizes = SMOKE if args.smoke else FULL
-    set_threads(args.threads)
+    global THREADS
+    THREADS = args.threads   # onnxruntime threads of every session qfit opens here
     wanted = args.only or FIGURES
     started = time.perf_counter()
     figures: list[Figure] = []
