@@ -18,22 +18,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
-from onnx import TensorProto, numpy_helper
+from onnx import numpy_helper
 
 from qfit import ops
 from qfit.errors import QfitError
 from qfit.quant.fixed_point import quantize_multipliers
 from qfit.quant.plan import Plan
 
-# Layer kinds of the export format, numbered in this order (1, 2, ...). Operator knowledge that
-# belongs to the export only: which ONNX op a firmware kernel family stands for.
+# Layer kinds of the export format, numbered in this order (1, 2, ...); which ONNX op is which
+# kind is the registry's `export_kind` (qfit/ops/).
 KINDS = ("CONV", "FULLY_CONNECTED", "ADD", "MUL", "AVERAGE_POOL", "GLOBAL_AVERAGE_POOL", "MAX_POOL",
          "GLOBAL_MAX_POOL", "RESHAPE", "CONCAT", "CLAMP")
-KIND_OF_OP = {"Conv": "CONV", "Gemm": "FULLY_CONNECTED", "MatMul": "FULLY_CONNECTED", "Add": "ADD",
-              "Mul": "MUL", "AveragePool": "AVERAGE_POOL", "GlobalAveragePool": "GLOBAL_AVERAGE_POOL",
-              "MaxPool": "MAX_POOL", "GlobalMaxPool": "GLOBAL_MAX_POOL", "Reshape": "RESHAPE",
-              "Flatten": "RESHAPE", "Squeeze": "RESHAPE", "Unsqueeze": "RESHAPE", "Concat": "CONCAT",
-              "Relu": "CLAMP", "Clip": "CLAMP"}
 # Kinds whose output takes the input's quantizer unchanged (no rescaling when the scales agree).
 PASS_THROUGH_KINDS = ("RESHAPE", "MAX_POOL", "GLOBAL_MAX_POOL")
 MAX_RANK = 4
@@ -133,10 +128,12 @@ class _Quantizers:
     def __init__(self, model: onnx.ModelProto, path: str):
         self.path = path
         graph = model.graph
-        self.inits = {i.name: i for i in graph.initializer}
+        self.values = {i.name: numpy_helper.to_array(i) for i in graph.initializer}
         for node in graph.node:   # scales written as Constant nodes
-            if node.op_type == "Constant" and node.attribute and node.attribute[0].name == "value":
-                self.inits[node.output[0]] = node.attribute[0].t
+            hook = ops.of(node).constant_value
+            value = hook(node) if hook is not None else None
+            if value is not None:
+                self.values[node.output[0]] = value
         self.dq_by_output = {n.output[0]: n for n in graph.node if n.op_type == "DequantizeLinear"}
         self.q_by_input: dict[str, onnx.NodeProto] = {}
         self.q_by_output: dict[str, onnx.NodeProto] = {}
@@ -145,17 +142,13 @@ class _Quantizers:
                 self.q_by_input.setdefault(n.input[0], n)
                 self.q_by_output[n.output[0]] = n
 
-    def array(self, name: str) -> np.ndarray:
-        return numpy_helper.to_array(self.inits[name])
-
-    def _scale_zero(self, node: onnx.NodeProto) -> tuple[np.ndarray, np.ndarray, int]:
-        scale = self.array(node.input[1]).astype(np.float32)
+    def _scale_zero(self, node: onnx.NodeProto) -> tuple[np.ndarray, np.ndarray, np.dtype]:
+        """(scale, zero point as int64, the zero point's stored type: uint8 when absent, as the spec says)."""
+        scale = self.values[node.input[1]].astype(np.float32)
         if len(node.input) > 2 and node.input[2]:
-            zero_init = self.inits[node.input[2]]
-            zero, zero_type = numpy_helper.to_array(zero_init).astype(np.int64), zero_init.data_type
-        else:
-            zero, zero_type = np.zeros(scale.shape, np.int64), TensorProto.UINT8
-        return scale, zero, zero_type
+            zero = self.values[node.input[2]]
+            return scale, zero.astype(np.int64), zero.dtype
+        return scale, np.zeros(scale.shape, np.int64), np.dtype(np.uint8)
 
     def activation(self, tensor: str, where: str) -> tuple[float, int]:
         """(scale, zero point) of an int8 activation tensor."""
@@ -165,7 +158,7 @@ class _Quantizers:
         if q is None:
             raise QfitError(f"export: {self.path}: tensor '{tensor}' ({where}) has no QuantizeLinear")
         scale, zero, zero_type = self._scale_zero(q)
-        if zero_type != TensorProto.INT8 or scale.size != 1:
+        if zero_type != np.int8 or scale.size != 1:
             raise QfitError(f"export: {self.path}: tensor '{tensor}' ({where}) is not stored as per-tensor int8 "
                             "(the export covers int8 activations)")
         return float(scale.reshape(-1)[0]), int(zero.reshape(-1)[0])
@@ -173,10 +166,10 @@ class _Quantizers:
     def constant(self, tensor: str, where: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
         """(integers, scale, zero point, axis) of a dequantized constant (a weight or a bias)."""
         dq = self.dq_by_output.get(tensor)
-        if dq is None or dq.input[0] not in self.inits:
+        if dq is None or dq.input[0] not in self.values:
             raise QfitError(f"export: {self.path}: {where} is not an integer constant")
         scale, zero, _ = self._scale_zero(dq)
-        return self.array(dq.input[0]), scale, zero, int(ops.attr(dq, "axis", 1))
+        return self.values[dq.input[0]], scale, zero, int(ops.attr(dq, "axis", 1))
 
 
 def _requant(layer: Layer, reals, source: str) -> None:
@@ -194,22 +187,14 @@ def _quantize_bound(value: float, scale: float, zero_point: int) -> int:
 
 
 def _clamp(layer: Layer, node: onnx.NodeProto, constants: dict, scale: float, zero_point: int) -> None:
-    """Narrow the layer's int8 output range to a ReLU's or Clip's bounds."""
-    low, high = -np.inf, np.inf
-    if node.op_type == "Relu":
-        low = 0.0
-    else:
-        bounds = []
-        for i in (1, 2):
-            name = node.input[i] if len(node.input) > i else ""
-            if name and name not in constants:
-                raise QfitError(f"export: layer '{node.name}': Clip bounds must be constants")
-            bounds.append(float(np.asarray(constants[name]).reshape(-1)[0]) if name else None)
-        low = bounds[0] if bounds[0] is not None else low
-        high = bounds[1] if bounds[1] is not None else high
-    if np.isfinite(low):
+    """Narrow the layer's int8 output range to a clamp's bounds (ReLU, ReLU6, Clip; from the registry)."""
+    bounds = ops.clamp_bounds(node, constants.get)
+    if bounds is None:
+        raise QfitError(f"export: layer '{node.name}': clamp bounds must be constants")
+    low, high = bounds
+    if low is not None and np.isfinite(low):
         layer.act_min = max(layer.act_min, _quantize_bound(low, scale, zero_point))
-    if np.isfinite(high):
+    if high is not None and np.isfinite(high):
         layer.act_max = min(layer.act_max, _quantize_bound(high, scale, zero_point))
 
 
@@ -282,27 +267,38 @@ class _Context:
         return self.scales[tensor][0]
 
 
+def _weight_input(node: onnx.NodeProto, ctx: _Context) -> tuple[int, int]:
+    """(input index, output-channel axis) of the layer's constant weight, from the registry."""
+    for index, axis_rule in ops.of(node).weights.items():
+        if index < len(node.input) and node.input[index] in ctx.loaded.constants:
+            shape = ctx.loaded.shapes[node.input[index]]
+            axis = axis_rule(node, shape)
+            if index == 0 or len(shape) < 2 or axis is None:
+                break
+            return index, axis % len(shape)
+    raise QfitError(f"export: layer '{node.name}' ({node.op_type}): only a constant weight on the right with "
+                    "per-channel or per-tensor scales along the output channels is exported")
+
+
 def _weighted_layer(layer: Layer, node: onnx.NodeProto, ctx: _Context, in_t: str, out_t: str) -> None:
     """CONV and FULLY_CONNECTED: int8 weights, int32 bias, one (multiplier, shift) per output channel."""
     q = ctx.quantizers
     s_in, s_out = ctx.scale(in_t), ctx.scale(out_t)
-    if node.op_type == "Conv":
-        w_shape = ctx.loaded.shapes[node.input[1]]
+    if ops.attr(node, "transA", 0) or ops.product_scale(node) != 1.0 or ops.bias_scale(node) != 1.0:
+        raise QfitError(f"export: layer '{node.name}': a transposed input, alpha or beta is not exported")
+    index, axis = _weight_input(node, ctx)
+    w_shape = ctx.loaded.shapes[node.input[index]]
+    if layer.kind == "CONV":
         if len(w_shape) != 4:
             raise QfitError(f"export: layer '{node.name}': only 2-D convolutions are exported")
-        s_w = _weights(layer, q, node.input[1], 0)
         _spatial(layer, node, list(w_shape[2:]), ctx.shape(in_t), ctx.shape(out_t))
         layer.groups = int(ops.attr(node, "group", 1))
-    elif node.op_type == "Gemm":
-        if ops.attr(node, "transA", 0) or ops.attr(node, "alpha", 1.0) != 1.0 or ops.attr(node, "beta", 1.0) != 1.0:
-            raise QfitError(f"export: layer '{node.name}': Gemm with transA, alpha or beta is not exported")
-        s_w = _weights(layer, q, node.input[1], 0 if ops.attr(node, "transB", 0) else 1)
-    else:  # MatMul by a constant [K, N] matrix
-        if node.input[1] not in ctx.loaded.constants or ctx.loaded.constants[node.input[1]].ndim != 2:
-            raise QfitError(f"export: layer '{node.name}': MatMul is exported only with a constant 2-D right operand")
-        s_w = _weights(layer, q, node.input[1], 1)
-    if len(node.input) > 2 and node.input[2]:
-        _bias(layer, q, node.input[2], s_in, s_w)
+    elif len(w_shape) != 2:
+        raise QfitError(f"export: layer '{node.name}': only a 2-D weight matrix is exported")
+    s_w = _weights(layer, q, node.input[index], axis)
+    bias = ops.of(node).bias
+    if bias is not None and bias < len(node.input) and node.input[bias]:
+        _bias(layer, q, node.input[bias], s_in, s_w)
     _requant(layer, np.float64(s_in) * s_w / np.float64(s_out), "input scale x weight scale / output scale")
 
 
@@ -333,7 +329,7 @@ def _window_layer(layer: Layer, node: onnx.NodeProto, ctx: _Context, in_t: str, 
     in_shape, out_shape = ctx.shape(in_t), ctx.shape(out_t)
     if len(in_shape) != 4:
         raise QfitError(f"export: layer '{node.name}': only 2-D pooling is exported")
-    if node.op_type in ("GlobalAveragePool", "GlobalMaxPool"):
+    if layer.kind in ("GLOBAL_AVERAGE_POOL", "GLOBAL_MAX_POOL"):
         layer.kernel = in_shape[2:]
         return
     if ops.attr(node, "ceil_mode", 0) or ops.attr(node, "count_include_pad", 0) or ops.attr(node, "storage_order", 0):
@@ -354,7 +350,7 @@ def _activation_inputs(node: onnx.NodeProto, ctx: _Context, kind: str) -> list[s
 
 
 def _build_layer(index: int, step: int, node: onnx.NodeProto, out_t: str, ctx: _Context) -> Layer:
-    kind = KIND_OF_OP[node.op_type]
+    kind = ops.of(node).export_kind
     in_names = _activation_inputs(node, ctx, kind)
     layer = Layer(index=index, name=node.name, op_type=node.op_type, kind=kind, step=step,
                   inputs=[ctx.tensor_index[n] for n in in_names], output=ctx.tensor_index[out_t])
@@ -404,9 +400,9 @@ def _check_all_int8(plan: Plan, loaded, path: str) -> None:
         if node.name in plan.float_nodes:
             raise QfitError(f"export: {path}: layer '{node.name}' ({node.op_type}) is kept float; the export "
                             "covers models whose layers are all int8")
-        if node.op_type not in KIND_OF_OP:
-            raise QfitError(f"export: {path}: layer '{node.name}' ({node.op_type}) has no export layer kind "
-                            f"(exported: {', '.join(sorted(KIND_OF_OP))})")
+        if ops.of(node).export_kind is None:
+            raise QfitError(f"export: {path}: layer '{node.name}' ({node.op_type}) has no layer kind in the export "
+                            f"(exported: {', '.join(sorted(t for t, op in ops.OPS.items() if op.export_kind))})")
     for (node, _), weight in plan.weights.items():
         if weight.bits != 8:
             raise QfitError(f"export: {path}: layer '{node}' has {weight.bits}-bit weights; the export covers int8")
@@ -434,7 +430,7 @@ def collect(model: onnx.ModelProto, path: str, loaded, plan: Plan, budget) -> Ex
     layers: list[Layer] = []
     for step, name in enumerate(order):
         node = nodes[name]
-        if node.op_type in ("Relu", "Clip") and node.input[0] in plan.fused:
+        if ops.clamp_bounds(node, loaded.constants.get) is not None and node.input[0] in plan.fused:
             continue    # folded into the previous layer's clamp
         out = node.output[0]
         fused = consumers[out][0] if out in plan.fused else None
