@@ -25,7 +25,7 @@ from qfit.memory.cost import macs_section
 from qfit.memory.options import BudgetOptions
 from qfit.memory.sram import MemoryModel, build_memory_model, sram_for
 from qfit.quant.plan import Plan
-from qfit.sizes import element_count, format_size
+from qfit.sizes import element_count
 
 RESOLUTION_STEPS = (8, 16)
 MAX_RESOLUTION_TRIES = 48
@@ -371,62 +371,3 @@ def flash_what_if(flash: dict, top: int = 8) -> dict:
     if flash["limit_bytes"] is not None:
         over = max(0, flash["total_bytes"] - flash["limit_bytes"])
     return {"over_limit_bytes": over, "largest_layers": rows}
-
-
-# ---- rendering (used by budget.render_text / render_markdown) -----------------------------------
-
-def sections(what_if: dict) -> list[tuple[str, list[str], list[list], list[str]]]:
-    out = []
-    lines = []
-    order = what_if.get("order") or {}
-    if order.get("saves_bytes"):
-        lines.append(f"run the nodes in the best order found: saves {format_size(order['saves_bytes'])} of peak")
-    res = what_if.get("resolution")
-    if res and "skipped" not in res:
-        cur = res["current"]
-        for key, row in res["largest_fitting"].items():
-            step = key.split("_")[1]
-            if row:
-                verb = "fits" if res["searched"] == "smaller sizes" else "still fits"
-                lines.append(f"input {row['height']}x{row['width']} (multiple of {step}) {verb}: "
-                             f"arena {format_size(row['arena_bytes'])}, peak {format_size(row['peak_bytes'])}")
-            elif res["searched"] == "smaller sizes":
-                lines.append(f"no input size that is a multiple of {step} below {cur['height']}x{cur['width']} fits")
-    elif res:
-        lines.append(f"resolution: {res['skipped']}")
-    tiling = what_if.get("tiling") or {}
-    if tiling.get("best"):
-        b = tiling["best"]
-        lines.append(f"tile the first {b['layers_tiled']} layers {b['tiles']} (up to {b['split_after']}): peak "
-                     f"{format_size(b['peak_bytes'])}, +{b['extra_macs']:,} MACs ({b['extra_macs_pct']}% more)")
-    elif tiling.get("options"):
-        b = min(tiling["options"], key=lambda r: (r["peak_bytes"], r["extra_macs"]))
-        lines.append(f"no tiling option fits; lowest: {b['tiles']} up to {b['split_after']}, peak "
-                     f"{format_size(b['peak_bytes'])} (the untiled rest peaks at {format_size(b['rest_peak_bytes'])})")
-    elif tiling.get("skipped"):
-        lines.append(f"tiling: {tiling['skipped']}")
-    out.append(("What would make SRAM fit", [], [], lines))
-    opts = tiling.get("options") or []
-    if opts:
-        shown = sorted(opts, key=lambda r: (not r["fits"], r["peak_bytes"] if not r["fits"] else r["extra_macs"],
-                                            r["layers_tiled"], r["n"]))[:8]
-        rows = [[r["tiles"], r["split_after"], "x".join(str(d) for d in r["split_shape"][1:]),
-                 format_size(r["peak_bytes"]), f"+{r['extra_macs']:,}", f"{r['extra_macs_pct']}%",
-                 "yes" if r["fits"] else ("no" if r["fits"] is False else "-")] for r in shown]
-        out.append(("Tiled first layers (patch-based)", ["tiles", "split after", "split CxHxW", "peak",
-                                                         "extra MACs", "of total", "fits"], rows,
-                    [f"{len(opts)} options evaluated, best {len(shown)} shown"]))
-    flash = what_if.get("flash") or {}
-    if flash.get("largest_layers"):
-        rows = []
-        for r in flash["largest_layers"]:
-            if "if_int8_saves_bytes" in r:
-                change = f"as int8 saves {format_size(r['if_int8_saves_bytes'])}"
-            else:
-                change = f"kept float costs {format_size(r['if_float_costs_bytes'])}"
-            rows.append([r["name"], r["op_type"], r["precision"], format_size(r["total_bytes"]), f"{r['share_pct']}%", change])
-        lines = []
-        if flash.get("over_limit_bytes"):
-            lines.append(f"flash is {format_size(flash['over_limit_bytes'])} over the limit")
-        out.append(("Flash: largest layers", ["layer", "op", "precision", "bytes", "share", "change"], rows, lines))
-    return out
