@@ -23,6 +23,7 @@ from qfit.report.html.figures import MISSING, Figures, attr, format_for_path, pa
 from qfit.report.html.style import PATTERNS, STYLE
 
 TILING_ROWS_SHOWN = 8
+MAC_LAYERS_SHOWN = 8
 
 
 def render_html(report: dict) -> str:
@@ -58,8 +59,9 @@ def _header(f: Figures) -> str:
     else:
         name = f.maybe("model_file", "text")
         sub = "qfit budget: memory only" + (f": {f.text('model_kind', 'text')}" if f.has("model_kind") else "")
-    links = [("verdict", "Verdict"), ("sram", "SRAM timeline"), ("flash", "Flash map"),
-             ("errors", "Layer errors"), ("whatif", "What would fit"), ("details", "Model and data")]
+    h = fmt.HEADINGS
+    links = [("verdict", h["verdict"]), ("sram", h["sram"]), ("flash", h["flash"]), ("errors", h["layers"]),
+             ("whatif", h["what_if"]), ("details", h["model"])]
     present = {"verdict": True, "sram": f.has("sram.timeline"), "flash": f.has("flash.layers"),
                "errors": bool(f.get("layers")), "whatif": bool(f.get("what_if")), "details": True}
     nav = "".join(f'<a href="#{key}">{label}</a>' for key, label in links if present[key])
@@ -68,7 +70,7 @@ def _header(f: Figures) -> str:
 
 
 def _verdict(f: Figures, is_check: bool) -> str:
-    out = ['<section id="verdict"><h2>Verdict</h2>']
+    out = [f'<section id="verdict"><h2>{fmt.HEADINGS["verdict"]}</h2>']
     if is_check:
         passed = f.get("verdict.exit_code") == 0
         head = f.text("verdict.exit_code", "exit", css="pass" if passed else "fail")
@@ -129,24 +131,24 @@ def _accuracy_card(f: Figures) -> str:
         lines = [f'<p>Top-1 on {samples} evaluation samples: float {f.text("accuracy.float", "pct")}, '
                  f'int8 {f.text("accuracy.int8", "pct")}.</p>',
                  f'<p>Drop {f.text("accuracy.drop_pt", "pt")}{interval}; a positive drop means int8 is worse.</p>']
-        if f.has("accuracy.top5.float"):
+        if f.has("accuracy.top5.float") and fmt.show_top5(f.report):
             lines.append(f'<p class="small">Top-5: float {f.text("accuracy.top5.float", "pct")}, int8 '
                          f'{f.text("accuracy.top5.int8", "pct")}, drop {f.text("accuracy.top5.drop_pt", "pt")}.</p>')
         if f.has("accuracy.output_sqnr_db"):
             lines.append(f'<p class="small">Output SQNR {f.text("accuracy.output_sqnr_db", "db")}.</p>')
-        title = "Accuracy"
+        title = fmt.HEADINGS["accuracy"]
     elif metric == "agreement":
         lines = [f'<p>No labels: float and int8 pick the same class for {f.text("accuracy.int8", "pct")} of '
                  f'{samples} samples.</p>']
         if f.has("accuracy.output_sqnr_db"):
             lines.append(f'<p class="small">Output SQNR {f.text("accuracy.output_sqnr_db", "db")}.</p>')
-        title = "Agreement"
+        title = fmt.HEADINGS["accuracy"]
     else:
         lines = [f'<p>Output SQNR {f.maybe("accuracy.output_sqnr_db", "db")} over {samples} samples.</p>']
         if f.has("accuracy.decision_flips_pct"):
             lines.append(f'<p>Decisions flipped at threshold {f.text("accuracy.threshold", "num")}: '
                          f'{f.text("accuracy.decision_flips_pct", "pct")} of samples.</p>')
-        title = "Output error"
+        title = fmt.HEADINGS["accuracy"]
     return f'<div class="card"><h3>{title}</h3>' + "".join(lines) + gate + "</div>"
 
 
@@ -154,7 +156,7 @@ def _accuracy_card(f: Figures) -> str:
 
 
 def _sram_section(f: Figures) -> str:
-    out = ['<section id="sram"><h2>SRAM over the execution order</h2>',
+    out = [f'<section id="sram"><h2>{fmt.HEADINGS["sram"]}</h2>',
            f'<p>Each bar is the bytes of activation tensors live while one node runs, in the '
            f'{f.maybe("sram.order_used", "text")} execution order. Hover over a bar for its node and tensors.</p>',
            sram_chart(f),
@@ -180,10 +182,6 @@ def _sram_section(f: Figures) -> str:
         facts.append(f'Arena plan: {f.text("arena.bytes", "size")} ({f.maybe("arena.ratio_to_peak", "ratio")} the '
                      f'peak) at {f.maybe("arena.alignment", "int")}-byte alignment; '
                      f'{f.maybe("arena.method", "text")}.')
-    if f.has("order.best_peak_bytes"):
-        facts.append(f'Execution order: {f.maybe("order.method", "text")} search; the graph\'s own order peaks at '
-                     f'{f.text("order.default_peak_bytes", "size")}, the best order found at '
-                     f'{f.text("order.best_peak_bytes", "size")} (saves {f.maybe("order.saved_bytes", "size")}).')
     if f.has("sram.conventions"):
         conv = f.get("sram.conventions")
         names = {"views": "reshapes share their input's bytes", "inplace": "elementwise ops overwrite their input",
@@ -192,9 +190,13 @@ def _sram_section(f: Figures) -> str:
                  for key, label in names.items() if key in conv]
         facts.append("Conventions: " + "; ".join(items) + ".")
     out += [f'<p class="small">{line}</p>' for line in facts]
+    if f.has("order.best_peak_bytes"):
+        out.append(f'<h3>{fmt.HEADINGS["order"]}</h3><p class="small">{f.maybe("order.method", "text")} search; the '
+                   f'graph\'s own order peaks at {f.text("order.default_peak_bytes", "size")}, the best order found at '
+                   f'{f.text("order.best_peak_bytes", "size")} (saves {f.maybe("order.saved_bytes", "size")}).</p>')
     timeline = f.get("sram.timeline") or []
     if timeline:
-        out.append(f"<details><summary>Every step</summary><table><thead><tr><th class=\"num\">step</th>"
+        out.append("<details><summary>Every step</summary><table><thead><tr><th class=\"num\">step</th>"
                    "<th>node</th><th>op</th><th class=\"num\">live</th><th>live tensors</th></tr></thead><tbody>")
         for i, _ in enumerate(timeline):
             p = lambda key: path_join("sram", "timeline", i, key)
@@ -208,7 +210,7 @@ def _sram_section(f: Figures) -> str:
 
 def _flash_section(f: Figures) -> str:
     layers = f.get("flash.layers") or []
-    out = ['<section id="flash"><h2>Flash, layer by layer</h2>',
+    out = [f'<section id="flash"><h2>{fmt.HEADINGS["flash"]}</h2>',
            f'<p>Stored weights and constants {f.text("flash.int8_bytes", "size")} in place of '
            f'{f.text("flash.float_bytes", "size")} as float32 ({f.maybe("flash.shrink_ratio", "ratio")} smaller); '
            f'with activation parameters, reserve and metadata the total is {f.text("flash.total_bytes", "size")} '
@@ -255,7 +257,7 @@ def _fallback_cell(f: Figures, path: str) -> str:
             continue
         sub = lambda k: path_join(*path_split(path), key, k)
         parts.append(f"{label}: flash {f.maybe(sub('flash'), 'size')}, SRAM {f.maybe(sub('sram'), 'size')}")
-    return "<td>" + "<br>".join(parts) + "</td>"
+    return '<td class="cost">' + "<br>".join(parts) + "</td>"
 
 
 def _layer_table(f: Figures, indices: list[int], letters: dict[int, str] | None = None,
@@ -280,7 +282,7 @@ def _error_section(f: Figures) -> str:
     criterion, marked = marked_layers(f.report)
     letters = {i: MARK_LETTERS[rank] for rank, i in enumerate(marked)}
     has_isolated = any("sqnr_isolated_db" in row for row in f.get("layers"))
-    out = ['<section id="errors"><h2>Quantization error, layer by layer</h2>',
+    out = [f'<section id="errors"><h2>{fmt.HEADINGS["layers"]}</h2>',
            "<p>Accumulated SQNR compares the int8 model's tensor with the float model's at the same point: "
            "where the error has grown to. "
            + ("Isolated SQNR quantizes only that layer: what the layer itself causes. " if has_isolated else
@@ -297,7 +299,7 @@ def _error_section(f: Figures) -> str:
     elif f.get("sensitivity.skipped"):
         out.append(f'<p class="small">Isolated sweep: {f.text("sensitivity.skipped", "text")}.</p>')
     if marked:
-        out.append(f"<h3>Worst layers: {criterion}</h3>")
+        out.append(f"<h3>{fmt.HEADINGS['sensitivity']}: the layers with {criterion}</h3>")
         out.append(_layer_table(f, marked, letters))
     all_rows = list(range(len(f.get("layers"))))
     out.append("<details><summary>Every layer</summary>"
@@ -326,7 +328,7 @@ def _repair_log(f: Figures) -> str:
     """The repair log, whatever fields the repair search records: each value is shown in the format
     its key's unit suffix names."""
     repair = f.get("repair")
-    out = ["<h3>Repair log</h3>"]
+    out = [f"<h3>{fmt.HEADINGS['repair']}</h3>"]
     if not isinstance(repair, dict):
         return out[0] + f"<p>{_generic_cell(f, 'repair', 'span')}</p>"
     facts = [k for k in repair if k != "steps"]
@@ -353,7 +355,7 @@ def _repair_log(f: Figures) -> str:
 # ---- what would make it fit -----------------------------------------------------------------------
 
 def _what_if_section(f: Figures) -> str:
-    out = ['<section id="whatif"><h2>What would make it fit</h2>']
+    out = [f'<section id="whatif"><h2>{fmt.HEADINGS["what_if"]}</h2>']
     if f.has("what_if.order.saves_bytes"):
         out.append(f'<p>Execution order: the best order found saves {f.text("what_if.order.saves_bytes", "size")} '
                    f'of peak (from {f.maybe("what_if.order.default_peak_bytes", "size")} to '
@@ -476,11 +478,13 @@ def _flash_what_if(f: Figures) -> str:
 # ---- model and data -------------------------------------------------------------------------------
 
 def _details_section(f: Figures, is_check: bool) -> str:
-    facts: list[tuple[str, str]] = []   # (label as HTML, figure as HTML)
+    """Model facts, then (for a check) quantization and data, improvements, and the largest MAC layers;
+    each group under the heading report.md gives it."""
+    groups: list[tuple[str | None, list[tuple[str, str]]]] = [(None, [])]   # (heading, [(label, figure)])
 
     def add(label: str, path: str, shown: str, key_html: str = "") -> None:
         if f.has(path) and f.get(path) is not None:
-            facts.append((escape(label) + key_html, f.text(path, shown)))
+            groups[-1][1].append((escape(label) + key_html, f.text(path, shown)))
 
     add("parameters", "model.params", "int")
     add("MACs", "model.macs", "int")
@@ -499,20 +503,47 @@ def _details_section(f: Figures, is_check: bool) -> str:
         add("note", path_join("notes", i), "text")
     if f.get("model.float_nodes"):
         add("kept float (unsupported op)", "model.float_nodes", "list")
-    for key in ("weights", "activations", "bias", "method"):
-        add(f"quantization: {key}", f"quantization.{key}", "text")
-    add("percentile", "quantization.percentile", "g")
-    for role in ("calibration", "evaluation"):
-        add(f"{role} folder", f"{role}.folder", "text")
-        add(f"{role} samples", f"{role}.samples", "int")
-        if f.get(f"{role}.skipped"):
-            add(f"{role} files skipped", f"{role}.skipped", "int")
-    add("labels from", "evaluation.labels", "text")
-    if f.get("evaluation.class_names"):
-        add("classes", "evaluation.class_names", "list")
-    for section in ("equalization", "bias_correction"):
-        for key in f.get(section) or {}:
-            facts.append((escape(f"{section.replace('_', ' ')}: {key.replace('_', ' ')}"),
-                          _generic_cell(f, path_join(section, key), "span")))
-    rows = "".join(f"<dt>{label}</dt><dd>{value}</dd>" for label, value in facts)
-    return f'<section id="details"><h2>Model and data</h2><dl class="facts">{rows}</dl></section>'
+    if is_check:
+        groups.append((fmt.HEADINGS["quantization"], []))
+        for key in ("weights", "activations", "bias", "method"):
+            add(f"quantization: {key}", f"quantization.{key}", "text")
+        add("percentile", "quantization.percentile", "g")
+        for role in ("calibration", "evaluation"):
+            add(f"{role} folder", f"{role}.folder", "text")
+            add(f"{role} samples", f"{role}.samples", "int")
+            if f.get(f"{role}.skipped"):
+                add(f"{role} files skipped", f"{role}.skipped", "int")
+        add("labels from", "evaluation.labels", "text")
+        if f.get("evaluation.class_names"):
+            add("classes", "evaluation.class_names", "list")
+    if any((f.get(section) or {}).get("enabled") for section in ("equalization", "bias_correction")):
+        groups.append((fmt.HEADINGS["improvements"], []))
+        for section in ("equalization", "bias_correction"):
+            for key in f.get(section) or {}:
+                groups[-1][1].append((escape(f"{section.replace('_', ' ')}: {key.replace('_', ' ')}"),
+                                      _generic_cell(f, path_join(section, key), "span")))
+    out = [f'<section id="details"><h2>{fmt.HEADINGS["model"]}</h2>']
+    for heading, facts in groups:
+        if heading:
+            out.append(f"<h3>{heading}</h3>")
+        out.append('<dl class="facts">' + "".join(f"<dt>{label}</dt><dd>{value}</dd>" for label, value in facts)
+                   + "</dl>")
+    out.append(_macs_table(f))
+    out.append("</section>")
+    return "\n".join(out)
+
+
+def _macs_table(f: Figures) -> str:
+    layers = f.get("macs.layers") or []
+    if not layers:
+        return ""
+    order = sorted(range(len(layers)), key=lambda i: (-layers[i]["macs"], -layers[i]["elementwise_ops"],
+                                                      layers[i]["name"]))[:MAC_LAYERS_SHOWN]
+    rows = []
+    for i in order:
+        p = lambda key: path_join("macs", "layers", i, key)  # noqa: E731
+        rows.append(f'<tr>{f.text(p("name"), "text", "td", "name")}{f.maybe(p("op_type"), "text", "td")}'
+                    f'{f.text(p("macs"), "int", "td", "num")}{f.text(p("elementwise_ops"), "int", "td", "num")}</tr>')
+    return (f'<h3>{fmt.HEADINGS["macs"]}</h3><p class="small">The layers with the most MACs, largest first.</p>'
+            '<table><thead><tr><th>layer</th><th>op</th><th class="num">MACs</th><th class="num">element ops</th>'
+            "</tr></thead><tbody>" + "".join(rows) + "</tbody></table>")

@@ -37,9 +37,13 @@ table{border-collapse:collapse;width:100%;font-size:13px;margin:6px 0}
 th,td{text-align:left;padding:3px 8px;border-bottom:1px solid var(--rule);vertical-align:middle}
 th{font-weight:600;border-bottom:2px solid var(--ink)}
 td.num,th.num{text-align:right;white-space:nowrap}
+th.num{white-space:normal}
 tbody tr:nth-child(even){background:#f4f1ea}
 td.name{word-break:break-word;min-width:7em}
 .scroll{overflow-x:auto}
+.scroll table{font-size:12px}
+.scroll th,.scroll td{padding:3px 5px}
+td.cost{min-width:11em;font-size:11.5px}
 table.flashmap td{padding:1px 8px}
 svg.chart{display:block;max-width:100%;height:auto;margin:6px 0}
 svg.bars{display:block}
