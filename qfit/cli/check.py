@@ -13,6 +13,7 @@ import sys
 
 from qfit import files
 from qfit.cli import boundary
+from qfit.cli import export as export_command
 from qfit.check import CheckOptions, check
 from qfit.cli.main import add_model_and_limits, default_of
 from qfit.data import Preprocess, load_preprocess, read_class_order
@@ -65,6 +66,12 @@ def add_parser(sub) -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=d("seed"), help="seed for --limit sampling")
     p.add_argument("--batch", type=int, default=d("batch_size"), help="samples per onnxruntime run")
     p.add_argument("--threads", type=int, default=d("threads"), help="onnxruntime threads (0 = its default)")
+    p.add_argument("--arithmetic", default=d("arithmetic"), choices=["integer", "float"],
+                   help="int8 figures from integer arithmetic as MCU kernels run it (default), or the faster "
+                        "float preview (onnxruntime, QDQ fusion off)")
+    p.add_argument("--rounding", default=d("rounding"), choices=["double", "single"],
+                   help="requantization rounding of the integer path: double (doubling high multiply, then "
+                        "rounding shift; default) or single (one rounding)")
     p.add_argument("--skip-bad", action="store_true", help="skip unreadable data files (counted in the report)")
     p.add_argument("--quiet", action="store_true", help="no progress bars")
     p.add_argument("--equalize", action="store_true",
@@ -80,6 +87,9 @@ def add_parser(sub) -> argparse.ArgumentParser:
                    help="repair steps accepted at most")
     p.add_argument("--repair-samples", type=int, default=d("repair_samples"), metavar="N",
                    help="evaluation samples the repair search measures on")
+    p.add_argument("--export", metavar="DIR",
+                   help="also write the int8 model as C99 data with the report's memory plan into DIR (qfit export)")
+    export_command.add_export_options(p)
     return p
 
 
@@ -121,7 +131,8 @@ def options_from(args) -> CheckOptions:
         eval_dir=args.eval, labels_csv=args.labels, flash_reserve_bytes=parse_size(args.flash_reserve, "--flash-reserve"),
         method=args.method, percentile=args.percentile, input_shapes=parse_input_shapes(args.input_shape),
         preprocess=preprocess_from(args), limit=args.limit, eval_limit=args.eval_limit, seed=args.seed,
-        batch_size=max(1, args.batch), threads=args.threads, per_channel=not args.per_tensor,
+        batch_size=max(1, args.batch), threads=args.threads, arithmetic=args.arithmetic, rounding=args.rounding,
+        per_channel=not args.per_tensor,
         symmetric_activations=args.symmetric, max_drop_pt=args.max_drop, accuracy_gate=not args.no_accuracy_gate,
         gate_upper_bound=args.gate_upper_bound, expect_float_pt=args.expect_float,
         expect_float_tolerance_pt=args.expect_float_tolerance,
@@ -135,6 +146,9 @@ def options_from(args) -> CheckOptions:
 def run(args) -> int:
     options = options_from(args)
     boundary.check_check_outputs(args)
+    export_options = export_command.export_options_from(args) if args.export else None
+    if args.export:
+        files.check_output_folder(args.export, "--export", inputs=[args.calib, args.eval])
     result = check(options)
     paths = result.paths
     report_bytes = files.json_bytes(build_report(result))
@@ -146,8 +160,16 @@ def run(args) -> int:
                 paths.report_md: files.text_bytes(markdown(report)),
                 paths.report_json: report_bytes,
                 paths.report_html: files.text_bytes(render_html(report))}
+    exported = {}
+    if args.export:   # the budget the report holds: the export's offsets are the report's arena plan
+        from qfit.report.export import export_files
+        exported = export_files(result.quantized.model, paths.model, args.export, export_options,
+                                budget_result=result.final.budget.result)
+        files.ensure_writable_dir(args.export, "--export")
     files.ensure_writable_dir(args.out)
-    files.write_files(contents)
+    files.write_files({**contents, **exported})
     print(summary_text(report))
     print(f"\nWrote {paths.model}, {paths.report_json}, {paths.report_md}, {paths.report_html}")
+    if exported:
+        print(export_command.summary_line(exported, caution=False))
     return result.exit_code

@@ -73,11 +73,12 @@ def run(args) -> int:
     return EXIT_OK
 
 
-def summary_line(contents: dict[str, bytes]) -> str:
-    """What was written, with the two figures firmware sizes its buffers by."""
+def summary_line(contents: dict[str, bytes], caution: bool = True) -> str:
+    """What was written, with the two figures firmware sizes its buffers by (and the caution, unless
+    the report printed just before already carries it)."""
     import json
 
     manifest = json.loads(next(data for path, data in contents.items() if path.endswith(".json")))
     return (f"Wrote {', '.join(contents)}: {len(manifest['layers'])} layers, {len(manifest['tensors'])} tensors, "
-            f"arena {manifest['arena']['bytes']} B, parameters {manifest['flash']['param_bytes']} B in flash.\n"
-            f"{manifest['caution']}")
+            f"arena {manifest['arena']['bytes']} B, parameters {manifest['flash']['param_bytes']} B in flash."
+            + (f"\n{manifest['caution']}" if caution else ""))
