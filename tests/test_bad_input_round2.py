@@ -135,7 +135,6 @@ def test_bad_input_percentile_outside_0_100(tmp_path, capfd, model, calib, value
 @pytest.mark.parametrize("args, fragment", [
     (["--seed", "-1"], "--seed: must be 0 or a positive whole number, got -1"),
     (["--threads", "100000"], "--threads: must be between 0 (onnxruntime's default) and 256, got 100000"),
-    (["--scale", "1e-45"], "--scale: 1e-45 is too small to give inputs a range"),
     (["--max-drop", "inf"], "--max-drop: must be a finite number, got inf"),
     (["--threshold", "nan"], "--threshold: must be a finite number, got nan"),
 ])
@@ -186,6 +185,48 @@ def test_bad_input_long_value_gives_a_capped_line(tmp_path, capfd, model, calib)
     message = assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--input-shape", "x" * 20000),
                              tmp_path / "out", "--input-shape: cannot read")
     assert len(message) <= len("qfit: error: ") + boundary.MAX_MESSAGE_CHARS
+
+
+@pytest.mark.parametrize("scale", [1e-45, 1e-38])
+def test_bad_input_tiny_pixel_scale_does_not_break_the_histogram(tmp_path, capfd, model, scale):
+    """Pixels times 1e-45 are denormal float32: the range histogram's bins per unit overflowed and
+    binning failed. Now the run ends with a verdict (its accuracy gate judges the result)."""
+    from test_bad_input import write_png
+    images = tmp_path / "images"
+    for i in range(4):
+        write_png(str(images / f"part_{i}.png"), 8, 8, seed=i)
+    pre = tmp_path / "pre.json"
+    pre.write_text(json.dumps({"scale": scale}))
+    code, _, err, _ = run_qfit(capfd, check_args(model, images, tmp_path / "out", "--preprocess", pre))
+    assert code in (0, 1), err
+    assert "Traceback" not in err
+    assert json.loads((tmp_path / "out" / "report.json").read_text())["verdict"]["exit_code"] == code
+
+
+def test_histogram_of_denormal_values_counts_every_value():
+    from qfit.quant.observe import TensorStats
+    stats = TensorStats("t")
+    values = np.array([1e-41, -3e-42, 0.0, 2e-45], np.float32)
+    stats.update(values)
+    assert stats.count == 4 and int(stats.hist.sum()) == 4  # every value binned, none lost or negative
+    assert stats.radius >= scale_floor.MIN_HISTOGRAM_RADIUS
+
+
+def test_bad_input_calibration_values_near_1e18_give_a_line_not_nan_json(tmp_path, capfd, model):
+    """Values near 1e18 square past float32 in the error sums: a NaN figure is refused before any
+    JSON is written (allow_nan=False never has to raise)."""
+    folder = tmp_path / "huge"
+    folder.mkdir()
+    rng = np.random.default_rng(0)
+    for i in range(4):
+        np.save(folder / f"s{i}.npy", (rng.standard_normal((1, 3, 8, 8)) * 1e18).astype(np.float32))
+    out = tmp_path / "out"
+    code, stdout, err, _ = run_qfit(capfd, check_args(model, folder, out))
+    assert "Traceback" not in err
+    if code == 2:
+        assert err.count("\n") <= 1 and "not a finite number" in err and not out.exists()
+    else:  # a run that keeps every figure finite is fine too: then its JSON parses strictly
+        json.loads((out / "report.json").read_text(), parse_constant=lambda c: pytest.fail(c))
 
 
 def _save(model, path):

@@ -19,7 +19,6 @@ from qfit.errors import QfitError
 
 MAX_THREADS = 256      # onnxruntime threads per session; thousands make it deadlock or abort
 MAX_BATCH = 65536      # samples per onnxruntime run; more only multiplies memory
-MIN_PIXEL_SCALE = 1e-30  # a smaller --scale leaves every input within float32's denormals: no range
 
 
 def _flag(dest: str) -> str:
@@ -51,10 +50,6 @@ def check_options(args: argparse.Namespace) -> None:
     if threads is not None and not 0 <= threads <= MAX_THREADS:
         raise QfitError(f"--threads: must be between 0 (onnxruntime's default) and {MAX_THREADS}, got {threads}")
     _positive(args, "batch", MAX_BATCH)
-    scale = getattr(args, "scale", None)
-    if scale is not None and not abs(scale) >= MIN_PIXEL_SCALE:
-        raise QfitError(f"--scale: {scale} is too small to give inputs a range (at least {MIN_PIXEL_SCALE} "
-                        f"in size)")
     for dest in ("cycles_per_mac", "clock_mhz", "energy_per_mac_pj"):
         _positive(args, dest)
     _positive(args, "order_time_limit", strict=False)

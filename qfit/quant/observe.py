@@ -20,6 +20,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from qfit.quant.scale_floor import MIN_HISTOGRAM_RADIUS
+
 HIST_BINS = 4096  # over [-R, R]; 2048 bins per sign, as the entropy method expects
 DEFAULT_PERCENTILE = 99.99
 # Values are binned in slices of this many elements so the temporaries stay in the CPU cache
@@ -63,7 +65,8 @@ class TensorStats:
                 self.hist[HIST_BINS // 2] += flat.size  # all zeros so far: the bin just above 0
                 self.zeros += flat.size
                 return
-            self.radius = float(2.0 ** np.ceil(np.log2(needed)))
+            # floored: for denormal-sized values BINS / 2R would overflow float32 (see scale_floor)
+            self.radius = max(float(2.0 ** np.ceil(np.log2(needed))), MIN_HISTOGRAM_RADIUS)
             if self.hist.any():  # zeros seen before a range existed: keep them at 0
                 zeros = self.hist.sum()
                 self.hist[:] = 0

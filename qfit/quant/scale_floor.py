@@ -13,6 +13,10 @@ import numpy as np
 
 MIN_WEIGHT_SCALE = float(2.0 ** -40)
 MIN_ACTIVATION_SCALE = float(2.0 ** -60)  # with MIN_WEIGHT_SCALE: s_in * s_w >= 2**-100, normal float32
+# The range histogram of qfit.quant.observe spans [-R, R] with R >= this: its bins per unit, 4096 / 2R,
+# stay a finite float32 (a pixel scale of 1e-45 gave denormal R, an infinite bin width, negative bins).
+# Values smaller than one bin (R / 2048) share the bins around 0, far below MIN_ACTIVATION_SCALE anyway.
+MIN_HISTOGRAM_RADIUS = float(2.0 ** -100)
 
 
 def floor_weight_scale(scale: np.ndarray) -> np.ndarray:
