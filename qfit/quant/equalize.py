@@ -208,6 +208,36 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
             kept.append(p)
     pairs = kept
 
+    weights, biases = _layer_arrays(loaded, nodes, pairs)
+    spread_before = {p.first: _channel_range_spread(weights[p.first]) for p in pairs}
+    lower, upper = _scale_bounds(pairs, extremes)
+    cumulative, result.sweeps = _sweep(pairs, nodes, weights, biases, lower, upper)
+    absorbed = _absorb(pairs, nodes, weights, biases, extremes, cumulative) if absorb else 0
+    result.absorbed_channels = absorbed
+
+    values: dict[str, np.ndarray] = {}
+    new_biases: dict[str, tuple[str, np.ndarray]] = {}
+    fresh = _fresh_names(loaded)
+    for name, w in weights.items():
+        node = nodes[name]
+        values[node.input[1]] = _rule(node).from_out_in(node, w).astype(np.float32)
+        if len(node.input) > 2 and node.input[2]:
+            values[node.input[2]] = biases[name].astype(np.float32)
+        elif np.any(biases[name] != 0):
+            new_biases[name] = (fresh(f"{name}_bias_equalized"), biases[name].astype(np.float32))
+    result.loaded = with_constants(loaded, values, new_biases)
+    result.loaded.notes.append(f"cross-layer equalization: {len(pairs)} layer pairs rescaled"
+                               + (f", {absorbed} channel offsets absorbed" if absorbed else ""))
+    result.pairs = [{"first": p.first, "second": p.second, "activation": p.activation, "channels": p.channels,
+                     "range_spread_before": round(spread_before[p.first], 3),
+                     "range_spread_after": round(_channel_range_spread(weights[p.first]), 3),
+                     "channels_fixed_by_clip": int(np.sum(upper[k] == 1.0)) if p.cap is not None else 0}
+                    for k, p in enumerate(pairs)]
+    return result
+
+
+def _layer_arrays(loaded: LoadedModel, nodes: dict, pairs: list[Pair]) -> tuple[dict, dict]:
+    """Weights (out, in, k...) and biases (zeros where a layer has none) of every paired layer, float64."""
     weights: dict[str, np.ndarray] = {}
     biases: dict[str, np.ndarray] = {}
     for name in {p.first for p in pairs} | {p.second for p in pairs}:
@@ -217,10 +247,12 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
         has_bias = len(node.input) > 2 and node.input[2]
         biases[name] = (loaded.constants[node.input[2]].astype(np.float64) if has_bias
                         else np.zeros(channels, np.float64))
-    spread_before = {p.first: _channel_range_spread(weights[p.first]) for p in pairs}
+    return weights, biases
 
-    # Bounds on the cumulative scale S_i of each pair's channels (1 = untouched).
-    lower, upper, cumulative = {}, {}, {}
+
+def _scale_bounds(pairs: list[Pair], extremes: dict) -> tuple[dict, dict]:
+    """Bounds on the cumulative scale S_i of each pair's channels (1 = untouched)."""
+    lower, upper = {}, {}
     for k, p in enumerate(pairs):
         lower[k] = np.zeros(p.channels)
         upper[k] = np.full(p.channels, np.inf)
@@ -230,8 +262,14 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
             # the clip must stay out of reach on the data: M_i / S_i <= cap
             lower[k] = np.where(engaged, 1.0, np.maximum(top, 0.0) / p.cap)
             upper[k] = np.where(engaged, 1.0, np.inf)
-        cumulative[k] = np.ones(p.channels)
+    return lower, upper
 
+
+def _sweep(pairs: list[Pair], nodes: dict, weights: dict, biases: dict, lower: dict, upper: dict
+           ) -> tuple[dict, int]:
+    """Rescale every pair towards equal ranges, repeatedly, until no scale moves (in place).
+    Returns the cumulative scale per pair and the number of sweeps."""
+    cumulative = {k: np.ones(p.channels) for k, p in enumerate(pairs)}
     sweeps = 0
     for sweeps in range(1, MAX_SWEEPS + 1):
         moved = 0.0
@@ -254,55 +292,38 @@ def equalize(loaded: LoadedModel, data=None, batch_size: int = 16, absorb: bool 
             moved = max(moved, float(np.max(np.abs(np.log(s)))) if s.size else 0.0)
         if moved < SCALE_TOLERANCE:
             break
-    result.sweeps = sweeps
+    return cumulative, sweeps
 
+
+def _absorb(pairs: list[Pair], nodes: dict, weights: dict, biases: dict, extremes: dict, cumulative: dict) -> int:
+    """Move each channel's guaranteed offset c_i from layer 1's bias into layer 2's (in place).
+    Returns the number of channels absorbed."""
     absorbed = 0
-    if absorb:
-        for k, p in enumerate(pairs):
-            if p.activation == "none" or p.pre_activation not in extremes:
-                continue
-            second = nodes[p.second]
-            if not _rule(second).unpadded(second):
-                continue
-            if ops.bias_scale(second) == 0.0:
-                continue
-            bottom, top = extremes[p.pre_activation]
-            bottom, top = bottom / cumulative[k], top / cumulative[k]
-            c = np.maximum(bottom, 0.0)
-            if p.cap is not None:
-                c = np.where(top <= p.cap, c, 0.0)  # a channel that reaches the clip keeps its offset
-            if not np.any(c > 0):
-                continue
-            w2 = weights[p.second]
-            alpha, beta = ops.product_scale(second), ops.bias_scale(second)
-            shift = np.zeros(w2.shape[0])
-            for (rows, col), ci in zip(_input_slices(second, w2, p.channels), c):
-                if ci > 0:
-                    shift[rows] += w2[rows, col].reshape(w2[rows, col].shape[0], -1).sum(axis=1) * ci
-            biases[p.first] -= c
-            biases[p.second] += shift * alpha / beta
-            absorbed += int(np.sum(c > 0))
-    result.absorbed_channels = absorbed
-
-    values: dict[str, np.ndarray] = {}
-    new_biases: dict[str, tuple[str, np.ndarray]] = {}
-    fresh = _fresh_names(loaded)
-    for name, w in weights.items():
-        node = nodes[name]
-        values[node.input[1]] = _rule(node).from_out_in(node, w).astype(np.float32)
-        if len(node.input) > 2 and node.input[2]:
-            values[node.input[2]] = biases[name].astype(np.float32)
-        elif np.any(biases[name] != 0):
-            new_biases[name] = (fresh(f"{name}_bias_equalized"), biases[name].astype(np.float32))
-    result.loaded = with_constants(loaded, values, new_biases)
-    result.loaded.notes.append(f"cross-layer equalization: {len(pairs)} layer pairs rescaled"
-                               + (f", {absorbed} channel offsets absorbed" if absorbed else ""))
-    result.pairs = [{"first": p.first, "second": p.second, "activation": p.activation, "channels": p.channels,
-                     "range_spread_before": round(spread_before[p.first], 3),
-                     "range_spread_after": round(_channel_range_spread(weights[p.first]), 3),
-                     "channels_fixed_by_clip": int(np.sum(upper[k] == 1.0)) if p.cap is not None else 0}
-                    for k, p in enumerate(pairs)]
-    return result
+    for k, p in enumerate(pairs):
+        if p.activation == "none" or p.pre_activation not in extremes:
+            continue
+        second = nodes[p.second]
+        if not _rule(second).unpadded(second):
+            continue
+        if ops.bias_scale(second) == 0.0:
+            continue
+        bottom, top = extremes[p.pre_activation]
+        bottom, top = bottom / cumulative[k], top / cumulative[k]
+        c = np.maximum(bottom, 0.0)
+        if p.cap is not None:
+            c = np.where(top <= p.cap, c, 0.0)  # a channel that reaches the clip keeps its offset
+        if not np.any(c > 0):
+            continue
+        w2 = weights[p.second]
+        alpha, beta = ops.product_scale(second), ops.bias_scale(second)
+        shift = np.zeros(w2.shape[0])
+        for (rows, col), ci in zip(_input_slices(second, w2, p.channels), c):
+            if ci > 0:
+                shift[rows] += w2[rows, col].reshape(w2[rows, col].shape[0], -1).sum(axis=1) * ci
+        biases[p.first] -= c
+        biases[p.second] += shift * alpha / beta
+        absorbed += int(np.sum(c > 0))
+    return absorbed
 
 
 # ---- empirical bias correction ---------------------------------------------------------------------
