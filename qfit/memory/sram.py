@@ -64,6 +64,27 @@ def _scratch_bytes(node, plan: Plan, shapes: dict) -> int:
     return rule(node, shapes.get, FLOAT_BYTES if node.name in plan.float_nodes else 2)
 
 
+class _Groups:
+    """Union-find over tensor names: each group is one buffer; `members` lists a root's tensors."""
+
+    def __init__(self, tensors: list[str]):
+        self.parent = {t: t for t in tensors}
+        self.members: dict[str, list[str]] = {t: [t] for t in tensors}
+
+    def find(self, t: str) -> str:
+        parent = self.parent
+        while parent[t] != t:
+            parent[t] = parent[parent[t]]
+            t = parent[t]
+        return t
+
+    def union(self, keep: str, other: str) -> None:
+        a, b = self.find(keep), self.find(other)
+        if a != b:
+            self.parent[b] = a
+            self.members[a].extend(self.members.pop(b))
+
+
 def build_memory_model(loaded: LoadedModel, plan: Plan, options: BudgetOptions,
                        shapes: dict | None = None) -> MemoryModel:
     """Buffers (with aliases resolved), dependencies and step-local bytes, in the graph's node order.
@@ -74,63 +95,15 @@ def build_memory_model(loaded: LoadedModel, plan: Plan, options: BudgetOptions,
     constants = loaded.constants
     producer = index.producer_position
     graph_inputs = [n for n in loaded.input_names if n not in constants]
-    outputs = set(loaded.output_names)
     tensors = list(graph_inputs) + [o for node in nodes for o in node.output if o]
     size = {t: stored_tensor(loaded, plan, shapes, t) for t in tensors}
-
-    def materialised(t: str) -> int:
-        return size[plan.fused[t]][0] if t in plan.fused and plan.fused[t] in size else size[t][0]
-
-    parent = {t: t for t in tensors}
-
-    def find(t: str) -> str:
-        while parent[t] != t:
-            parent[t] = parent[parent[t]]
-            t = parent[t]
-        return t
-
-    members: dict[str, list[str]] = {t: [t] for t in tensors}
-
-    def union(keep: str, other: str) -> None:
-        a, b = find(keep), find(other)
-        if a != b:
-            parent[b] = a
-            members[a].extend(members.pop(b))
-
-    input_set = set(graph_inputs)
-    for i, node in enumerate(nodes):
-        entry = ops.of(node)
-        for out in node.output:
-            # A fused tensor (Conv -> ReLU folded into requantization) is never stored: the producer
-            # writes the clamped result straight into the ReLU's output buffer.
-            if out in plan.fused and plan.fused[out] in parent:
-                union(out, plan.fused[out])
-        if not node.output or not node.output[0]:
-            continue
-        out = node.output[0]
-        if options.views and entry.alias == "view" and node.input and node.input[0] in parent:
-            src = node.input[0]
-            if materialised(src) == materialised(out) and size[src][1] == size[out][1]:
-                union(src, out)
-        elif options.inplace and entry.alias == "inplace":
-            for src in node.input:
-                if not src or src not in parent or find(src) == find(out):
-                    continue
-                root = find(src)
-                if any(m in input_set for m in members[root]) or any(m in outputs for m in members[root]):
-                    continue  # the application owns graph inputs; outputs must survive
-                readers = {r for m in members[root] for r in index.reader_positions(m)}
-                member_producers = {producer(m) for m in members[root] if producer(m) is not None}
-                if readers - member_producers != {i}:
-                    continue
-                if materialised(src) != materialised(out) or size[src][1] != _stored_dtype(size, plan, out):
-                    continue
-                union(src, out)
-                break
+    groups = _alias_groups(loaded, plan, options, tensors, size)
 
     buffers: list[schedule.Buffer] = []
     buffer_of: dict[str, int] = {}
+    input_set, outputs = set(graph_inputs), set(loaded.output_names)
     position = {t: k for k, t in enumerate(tensors)}
+    members = groups.members
     for root in sorted(members, key=lambda r: min(position[m] for m in members[r])):
         group = sorted(members[root], key=lambda m: position[m])
         stored = [m for m in group if size[m][0] > 0] or group
@@ -153,6 +126,52 @@ def build_memory_model(loaded: LoadedModel, plan: Plan, options: BudgetOptions,
         node_names=[n.name for n in nodes], preds=preds, buffers=buffers,
         extra_bytes=[s + c for s, c in zip(scratch, conversion)])
     return MemoryModel(problem, nodes, scratch, conversion, buffer_of)
+
+
+def _alias_groups(loaded: LoadedModel, plan: Plan, options: BudgetOptions, tensors: list[str],
+                  size: dict) -> _Groups:
+    """Tensors that share one buffer: a fused tensor with its clamp's output, a view with its input
+    (same bytes and type), an in-place op's output with the one input nobody else reads afterwards."""
+    index = loaded.index
+    producer = index.producer_position
+    input_set = {n for n in loaded.input_names if n not in loaded.constants}
+    outputs = set(loaded.output_names)
+    groups = _Groups(tensors)
+    parent, members, find = groups.parent, groups.members, groups.find
+
+    def materialised(t: str) -> int:
+        return size[plan.fused[t]][0] if t in plan.fused and plan.fused[t] in size else size[t][0]
+
+    for i, node in enumerate(index.nodes):
+        entry = ops.of(node)
+        for out in node.output:
+            # A fused tensor (Conv -> ReLU folded into requantization) is never stored: the producer
+            # writes the clamped result straight into the ReLU's output buffer.
+            if out in plan.fused and plan.fused[out] in parent:
+                groups.union(out, plan.fused[out])
+        if not node.output or not node.output[0]:
+            continue
+        out = node.output[0]
+        if options.views and entry.alias == "view" and node.input and node.input[0] in parent:
+            src = node.input[0]
+            if materialised(src) == materialised(out) and size[src][1] == size[out][1]:
+                groups.union(src, out)
+        elif options.inplace and entry.alias == "inplace":
+            for src in node.input:
+                if not src or src not in parent or find(src) == find(out):
+                    continue
+                root = find(src)
+                if any(m in input_set for m in members[root]) or any(m in outputs for m in members[root]):
+                    continue  # the application owns graph inputs; outputs must survive
+                readers = {r for m in members[root] for r in index.reader_positions(m)}
+                member_producers = {producer(m) for m in members[root] if producer(m) is not None}
+                if readers - member_producers != {i}:
+                    continue
+                if materialised(src) != materialised(out) or size[src][1] != _stored_dtype(size, plan, out):
+                    continue
+                groups.union(src, out)
+                break
+    return groups
 
 
 def _stored_dtype(size: dict, plan: Plan, out: str) -> str:
