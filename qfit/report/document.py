@@ -67,27 +67,48 @@ def _memory_row(label: str, used: int, limit: int | None, fits) -> list[str]:
     return [label, fmt.size(used), fmt.size(limit), margin, fmt.fits(fits)]
 
 
+ACCURACY_HEADERS = ["metric", "int8", "float", "drop", "95 % CI of the drop", "samples", "gate"]
+
+
+def _gate_word(report: dict) -> str:
+    verdict = report["verdict"]
+    return fmt.MISSING if verdict.get("max_drop_pt") is None else fmt.GATE_WORDS[verdict["accuracy_ok"]]
+
+
 def accuracy_row(report: dict) -> list[str]:
-    acc, verdict = report["accuracy"], report["verdict"]
-    gate = fmt.MISSING if verdict.get("max_drop_pt") is None else fmt.GATE_WORDS[verdict["accuracy_ok"]]
+    """One row under ACCURACY_HEADERS: top-1 with labels, argmax agreement without, output SQNR for scores."""
+    acc = report["accuracy"]
+    interval = acc.get("drop_ci95_pt")
+    ci = f"{fmt.pt(interval[0])} to {fmt.pt(interval[1])}" if interval else fmt.MISSING
     if acc.get("metric") == "top1":
-        lo, hi = acc["drop_ci95_pt"]
-        return ["top-1 accuracy", f"int8 {fmt.pct(acc['int8'])}", f"float {fmt.pct(acc['float'])}",
-                f"drop {fmt.pt(acc['drop_pt'])} (95 % CI {fmt.pt(lo)} to {fmt.pt(hi)}), n={acc['samples']}", gate]
+        return ["top-1", fmt.pct(acc["int8"]), fmt.pct(acc["float"]), fmt.pt(acc["drop_pt"]), ci,
+                str(acc["samples"]), _gate_word(report)]
     if acc.get("metric") == "agreement":
-        return ["argmax agreement", fmt.pct(acc["int8"]), fmt.MISSING,
-                f"output SQNR {fmt.db(acc['output_sqnr_db'])}, n={acc['samples']}", gate]
-    extra = (f", decision flips {fmt.pct(acc['decision_flips_pct'])}" if "decision_flips_pct" in acc else "")
-    return ["output SQNR", fmt.db(acc["output_sqnr_db"]), fmt.MISSING, f"n={acc['samples']}{extra}", fmt.MISSING]
+        return ["argmax agreement", fmt.pct(acc["int8"]), fmt.MISSING, fmt.pt(acc.get("drop_pt")), ci,
+                str(acc["samples"]), _gate_word(report)]
+    return ["output SQNR", fmt.db(acc["output_sqnr_db"]), fmt.MISSING, fmt.MISSING, fmt.MISSING,
+            str(acc["samples"]), fmt.MISSING]
+
+
+def accuracy_line(report: dict) -> str:
+    """The accuracy outcome in one sentence, for the verdict."""
+    metric, int8, float_, drop, ci, samples, gate = accuracy_row(report)
+    if report["accuracy"].get("metric") == "top1":
+        text = f"top-1 accuracy: int8 {int8}, float {float_}, drop {drop} (95 % CI {ci}), {samples} samples"
+    elif report["accuracy"].get("metric") == "agreement":
+        text = f"argmax agreement of int8 with float: {int8}, {samples} samples"
+    else:
+        text = f"output SQNR of int8 against float: {int8}, {samples} samples"
+    return text + ("" if gate == fmt.MISSING else f"; accuracy gate: {gate}")
 
 
 def verdict_section(report: dict) -> Section:
     flash, sram = report["flash"], report["sram"]
     rows = [_memory_row("flash", flash["total_bytes"], flash["limit_bytes"], flash["fits"]),
             _memory_row("SRAM (arena plan)", sram["required_bytes"], sram["limit_bytes"], sram["fits"])]
-    if report.get("accuracy"):
-        rows.append(accuracy_row(report))
     lines = [result_line(report)]
+    if report.get("accuracy"):
+        lines.append(accuracy_line(report))
     if report.get("model_kind"):
         kind = ("QDQ model, figures as quantized" if report["model_kind"] == "qdq" else
                 "float model, figures as if quantized to int8")
@@ -146,11 +167,20 @@ def accuracy_section(report: dict) -> Section:
     ev = report["evaluation"]
     reused = ", the calibration data reused: optimistic" if ev.get("reused_calibration_data") else ""
     lines = [_data_line("evaluation", ev, reused), f"arithmetic: {report['evaluation_path']}"]
+    preview = (report.get("arithmetic") or {}).get("float_preview")
+    if preview and preview.get("prediction_changes") is not None:
+        lines.append(f"integer path vs float preview: {preview['prediction_changes']} of {preview['samples']} "
+                     f"evaluation samples change their prediction")
     if fmt.show_top5(report):
         top5 = report["accuracy"]["top5"]
         lines.append(f"top-5: float {fmt.pct(top5['float'])}, int8 {fmt.pct(top5['int8'])}, "
                      f"drop {fmt.pt(top5['drop_pt'])}")
-    return Section("accuracy", lines, [Table(["metric", "int8", "float", "detail", "gate"], [accuracy_row(report)])])
+    acc = report["accuracy"]
+    if acc.get("output_sqnr_db") is not None and acc.get("metric") != "output_sqnr":
+        lines.append(f"output SQNR of int8 against float: {fmt.db(acc['output_sqnr_db'])}")
+    if acc.get("decision_flips_pct") is not None:
+        lines.append(f"decisions flipped at the threshold: {fmt.pct(acc['decision_flips_pct'])}")
+    return Section("accuracy", lines, [Table(ACCURACY_HEADERS, [accuracy_row(report)])])
 
 
 def worst_layers(report: dict, count: int | None) -> list[dict]:
@@ -201,22 +231,45 @@ def ranked_layers(report: dict, count: int | None) -> list[dict]:
     return sorted(rows, key=lambda r: r["sensitivity_rank"])[:count]
 
 
+def _plus_minus(row: dict, key: str, unit: str, digits: int = 1, signed: bool = False) -> str:
+    """A figure of the sensitivity sweep with its standard error (the row's `<key minus unit>_se_<unit>`)."""
+    value = row.get(key)
+    if value is None:
+        return fmt.MISSING
+    suffix = key.rsplit("_", 1)[1]
+    se = row.get(f"{key[:-len(suffix) - 1]}_se_{suffix}")
+    text = f"{value:+.{digits}f}" if signed else f"{value:.{digits}f}"
+    return text + (f" ± {se:.{digits}f}" if se is not None else "") + f" {unit}"
+
+
 def ranking_tables(report: dict, count: int | None) -> list[Table]:
-    """The sensitivity ranking, worst layer first: what each layer does to the accuracy, then what
-    each repair of it would cost in bytes."""
+    """The sensitivity ranking, worst layer first: what each layer does to the model output (with
+    standard errors) and, where the samples resolve it, to the accuracy; then what each repair of it
+    would cost in bytes."""
     section = report.get("sensitivity", {})
     isolated_key, float_key = section.get("isolated_key"), section.get("float_key")
     rows = ranked_layers(report, count)
-    points = isolated_key is not None
     unit = " (agreement)" if isolated_key == "sensitivity_agreement_pt" else ""
-    headers = ["#", "layer"] + ([f"drop alone{unit}", f"drop saved if float{unit}"] if points
-                                else ["output SQNR if float"])
-    headers += ["output SQNR alone", "SQNR now"]
+    continuous = any(r.get("isolated_output_sample_sqnr_db") is not None for r in rows)
+    kl = any(r.get("isolated_output_kl_mnats") is not None for r in rows)
+    headers = ["#", "layer"]
+    headers += (["output SQNR alone"] + (["KL alone"] if kl else []) + ["SQNR gain if float"] if continuous
+                else ["output SQNR alone"])
+    if isolated_key:
+        headers.append(f"drop alone{unit}")
+    if float_key:
+        headers.append(f"drop saved if float{unit}" if float_key.endswith("_pt") else "output SQNR if float")
+    headers.append("SQNR now")
     effects, costs = [], []
     for r in rows:
         name = [str(r["sensitivity_rank"]), fmt.short_name(r["name"])]
-        cells = ([fmt.pt(r.get(isolated_key)), fmt.pt(r.get(float_key))] if points else [fmt.db(r.get(float_key))])
-        effects.append(name + cells + [fmt.db(r.get("isolated_output_sqnr_db")), fmt.db(r.get("sqnr_db"))])
+        cells = ([_plus_minus(r, "isolated_output_sample_sqnr_db", "dB")]
+                 + ([_plus_minus(r, "isolated_output_kl_mnats", "mnat", 3)] if kl else [])
+                 + [_plus_minus(r, "float_recovery_db", "dB", signed=True)] if continuous
+                 else [fmt.db(r.get("isolated_output_sqnr_db"))])
+        cells += [fmt.pt(r.get(key)) if key.endswith("_pt") else fmt.db(r.get(key))
+                  for key in (isolated_key, float_key) if key]
+        effects.append(name + cells + [fmt.db(r.get("sqnr_db"))])
         costs.append(name + [fmt.size(r.get("weight_bytes_int8", 0)), _cost(r, "float"), _cost(r, "int16")])
     return [Table(headers, effects),
             Table(["#", "layer", "int8 weights", "keep float: +flash / +SRAM", "int16 output: +flash / +SRAM"], costs)]
@@ -230,6 +283,8 @@ def sensitivity_section(report: dict, compact: bool) -> Section:
              f"int8; \"now\": the layer's accumulated SQNR in the written model. Measured on "
              f"{section['samples_used']} of {section['samples_available']} evaluation samples (cap "
              f"{section['sample_cap']}); byte costs against the all-int8 plan. Worst first."]
+    lines += [text for text in (section.get("ranked_by") and f"Ranked by {section['ranked_by']}; ± one standard "
+                                f"error over the samples.", section.get("points_note")) if text]
     return Section("sensitivity", lines, ranking_tables(report, RANKED_LAYERS_SHOWN if compact else None))
 
 
