@@ -121,12 +121,8 @@ def load_preprocess(path: str) -> Preprocess:
     where = f"preprocess file {path}"
     try:
         text = read_regular_file(path, MAX_SMALL_FILE_BYTES, where).decode("utf-8")
-    except FileNotFoundError:
-        raise QfitError(f"{where}: no such file") from None
-    except IsADirectoryError:
-        raise QfitError(f"{where}: is a directory, not a JSON file") from None
-    except (OSError, UnicodeDecodeError) as e:
-        raise QfitError(f"{where}: cannot read ({getattr(e, 'strerror', None) or e})") from None
+    except UnicodeDecodeError as e:
+        raise QfitError(f"{where}: not UTF-8 text (bad byte at offset {e.start})") from None
     try:
         config = json.loads(text)
     except json.JSONDecodeError as e:
@@ -611,8 +607,6 @@ def read_class_order(spec: str) -> list[str]:
         where = f"--class-order: {spec}"
         try:
             text = read_regular_file(spec, MAX_SMALL_FILE_BYTES, where).decode("utf-8-sig")
-        except OSError as e:
-            raise QfitError(f"{where}: cannot read ({e.strerror or e})") from None
         except UnicodeDecodeError as e:
             raise QfitError(f"{where}: not UTF-8 text (bad byte at offset {e.start})") from None
         names = [line.strip() for line in text.splitlines() if line.strip()]
@@ -643,14 +637,7 @@ def read_labels_csv(csv_path: str, data_files: set[str], folder: str = ".",
                     class_order: list[str] | None = None) -> tuple[list[str], list[int], list[str] | None]:
     """Read a `file,label` CSV -> (sorted files, their labels, class names or None)."""
     where = f"labels CSV {csv_path}"
-    try:
-        raw = read_regular_file(csv_path, MAX_SMALL_FILE_BYTES, where)
-    except FileNotFoundError:
-        raise QfitError(f"{where}: no such file") from None
-    except IsADirectoryError:
-        raise QfitError(f"{where}: is a directory, not a CSV file") from None
-    except OSError as e:
-        raise QfitError(f"{where}: cannot read ({e.strerror or e})") from None
+    raw = read_regular_file(csv_path, MAX_SMALL_FILE_BYTES, where)  # refuses missing, special, huge files
     try:
         text = raw.decode("utf-8-sig")  # -sig: spreadsheet exports often start with a byte-order mark
     except UnicodeDecodeError as e:
