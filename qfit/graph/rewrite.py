@@ -152,8 +152,8 @@ def fold_channel_affine(graph: onnx.GraphProto, where: str = "<memory>") -> tupl
         return numpy_helper.to_array(inits[name]) if name in inits else None
 
     folded = lone = 0
-    replacements: dict[int, list[onnx.NodeProto]] = {}
-    for node in graph.node:
+    replacements: dict[int, list[onnx.NodeProto]] = {}   # node position -> the nodes that replace it
+    for position, node in enumerate(index.nodes):
         rule = ops.of(node).folds_into_producer
         if rule is None:
             continue
@@ -169,14 +169,14 @@ def fold_channel_affine(graph: onnx.GraphProto, where: str = "<memory>") -> tupl
         target = _fold_target(prev, index, inits, outputs, k.shape[0])
         if target is not None:
             _fold_into(graph, node, prev, *target, k, shift, inits, where)
-            replacements[id(node)] = []
+            replacements[position] = []
             folded += 1
         else:
-            replacements[id(node)] = _as_mul_add(graph, node, k, shift)
+            replacements[position] = _as_mul_add(graph, node, k, shift)
             lone += 1
     result = []
-    for node in graph.node:
-        result.extend(replacements.get(id(node), [node]))
+    for position, node in enumerate(graph.node):
+        result.extend(replacements.get(position, [node]))
     del graph.node[:]
     graph.node.extend(result)
     return folded, lone

@@ -16,6 +16,8 @@ The input file is never modified.
 """
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 import numpy as np
 import onnx
 from onnx import TensorProto, numpy_helper
@@ -69,6 +71,17 @@ def _dequantize(q: np.ndarray, scale: np.ndarray, zero: np.ndarray | None, axis:
     return ((q - zero) * scale.astype(np.float64)).astype(np.float32)
 
 
+@dataclass
+class _Stripped:
+    """What removing the quantizer nodes of a QDQ graph leaves to record."""
+
+    const_quant: dict[str, tuple[int, int | None]] = field(default_factory=dict)  # float constant -> (bits, axis)
+    act_bits: dict[str, tuple] = field(default_factory=dict)   # activation -> (bits, quantizer parameters)
+    rename: dict[str, str] = field(default_factory=dict)       # tensor read by consumers -> tensor it stands for
+    removed: set[int] = field(default_factory=set)             # positions of the quantizer nodes
+    new_inits: list[onnx.TensorProto] = field(default_factory=list)  # dequantized constants
+
+
 def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
              input_shapes: dict[str, tuple[int, ...]] | None = None) -> tuple[LoadedModel, Plan]:
     """The float LoadedModel and the Plan a QDQ `model` encodes (see the module docstring)."""
@@ -78,19 +91,23 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
     # Constant nodes (scales written as Constant) become initializers first.
     rewrite.constants_to_initializers(graph)
     inits = {i.name: i for i in graph.initializer}
+    stripped = _strip_quantizers(graph, inits, path)
+    _rewire(graph, inits, stripped, path)
+    loaded = prepare_model(work, path, input_shapes)
+    return loaded, _plan_from(loaded, stripped.act_bits, stripped.const_quant)
+
+
+def _strip_quantizers(graph: onnx.GraphProto, inits: dict, path: str) -> _Stripped:
+    """Record every quantizer of `graph`: dequantized constants become float initializers, a
+    QuantizeLinear -> DequantizeLinear pair on an activation records the activation's bits."""
     index = GraphIndex(graph)
     outputs = {o.name for o in graph.output}
-
-    const_quant: dict[str, tuple[int, int | None]] = {}   # float constant name -> (bits, axis)
-    act_bits: dict[str, int] = {}
-    rename: dict[str, str] = {}       # tensor read by consumers -> tensor it stands for
-    removed: set[int] = set()
-    new_inits: list[onnx.TensorProto] = []
+    found = _Stripped()
 
     def array(name: str) -> np.ndarray:
         return numpy_helper.to_array(inits[name])
 
-    for node in graph.node:
+    for position, node in enumerate(index.nodes):
         if node.op_type == "DequantizeLinear" and node.input[0] in inits:
             q = array(node.input[0])
             scale = array(node.input[1]) if node.input[1] in inits else None
@@ -101,31 +118,37 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
             bits = _BITS.get(inits[node.input[0]].data_type)
             if bits is None:
                 raise QfitError(f"model: {path}: DequantizeLinear '{node.name}' reads an unsupported integer type")
-            new_inits.append(numpy_helper.from_array(_dequantize(q, scale, zero, axis), node.output[0]))
-            const_quant[node.output[0]] = (bits, axis if scale.size > 1 else None)
-            removed.add(id(node))
+            found.new_inits.append(numpy_helper.from_array(_dequantize(q, scale, zero, axis), node.output[0]))
+            found.const_quant[node.output[0]] = (bits, axis if scale.size > 1 else None)
+            found.removed.add(position)
         elif node.op_type == "QuantizeLinear":
             x, q = node.input[0], node.output[0]
             bits = _BITS.get(_zero_point_type(node, inits))
             if bits is None or bits > 16:
                 raise QfitError(f"model: {path}: QuantizeLinear '{node.name}' writes an unsupported integer type")
-            readers = index.consumers(q)
-            if q in outputs or any(r.op_type != "DequantizeLinear" for r in readers):
+            readers = index.reader_positions(q)
+            if q in outputs or any(index.nodes[r].op_type != "DequantizeLinear" for r in readers):
                 raise QfitError(f"model: {path}: QuantizeLinear '{node.name}' output '{q}' is not only read by "
                                 "DequantizeLinear (integer graph outputs or integer operators are not supported)")
             if x in inits:
-                const_quant[x] = (bits, int(ops.attr(node, "axis", 1)) if array(node.input[1]).size > 1 else None)
+                found.const_quant[x] = (bits, int(ops.attr(node, "axis", 1)) if array(node.input[1]).size > 1 else None)
             else:
-                act_bits[x] = (bits, _quant_params(node, inits))
-            for dq in readers:
-                rename[dq.output[0]] = x
-                removed.add(id(dq))
-            removed.add(id(node))
-    for node in graph.node:
-        if node.op_type == "DequantizeLinear" and id(node) not in removed:
+                found.act_bits[x] = (bits, _quant_params(node, inits))
+            for r in readers:
+                found.rename[index.nodes[r].output[0]] = x
+                found.removed.add(r)
+            found.removed.add(position)
+    for position, node in enumerate(index.nodes):
+        if node.op_type == "DequantizeLinear" and position not in found.removed:
             raise QfitError(f"model: {path}: DequantizeLinear '{node.name}' reads '{node.input[0]}', which is "
                             "neither a constant nor the output of a QuantizeLinear")
+    return found
 
+
+def _rewire(graph: onnx.GraphProto, inits: dict, stripped: _Stripped, path: str) -> None:
+    """Remove the quantizer nodes: consumers read the float tensors again (in place)."""
+    outputs = {o.name for o in graph.output}
+    rename, act_bits = stripped.rename, stripped.act_bits
     # A DQ output that is a graph output keeps its name: the float tensor behind it takes that name.
     output_renames: dict[str, str] = {}
     for dq_out, x in list(rename.items()):
@@ -134,7 +157,7 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
                 raise QfitError(f"model: {path}: graph output '{dq_out}' is a quantized copy of an input or constant")
             output_renames[x] = dq_out
             del rename[dq_out]
-    kept = [n for n in graph.node if id(n) not in removed]
+    kept = [n for position, n in enumerate(graph.node) if position not in stripped.removed]
     for node in kept:
         for i, name in enumerate(node.input):
             name = rename.get(name, name)
@@ -146,18 +169,15 @@ def read_qdq(model: onnx.ModelProto, path: str = "<memory>",
             act_bits[new] = act_bits.pop(old)
     del graph.node[:]
     graph.node.extend(kept)
-    graph.initializer.extend(new_inits)
+    graph.initializer.extend(stripped.new_inits)
     used = {n for node in kept for n in node.input} | outputs
     keep_inits = [i for i in graph.initializer if i.name in used]
     del graph.initializer[:]
     graph.initializer.extend(keep_inits)
     del graph.value_info[:]
 
-    loaded = prepare_model(work, path, input_shapes)
-    return loaded, _plan_from(loaded, act_bits, const_quant)
 
-
-def _plan_from(loaded: LoadedModel, act_bits: dict[str, int], const_quant: dict) -> Plan:
+def _plan_from(loaded: LoadedModel, act_bits: dict[str, tuple], const_quant: dict) -> Plan:
     plan = Plan()
     graph = loaded.graph
     index = loaded.index
