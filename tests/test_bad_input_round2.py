@@ -360,3 +360,49 @@ def test_bad_input_denormal_weight_channel_gets_the_minimum_scale(tmp_path, capf
     x_dq = next(n for n in q.graph.node if n.op_type == "DequantizeLinear" and n.output[0] == conv.input[0])
     s_in = np.float32(inits[x_dq.input[1]])
     assert [Fraction(float(v)) for v in b_scale] == [Fraction(float(np.float32(s_in * s))) for s in w_scale]
+
+
+# ------------------------------------------------------------------------------ 7. labels, batches
+
+def test_bad_input_labels_without_eval_reach_the_repair_search(tmp_path, capfd, model, monkeypatch):
+    """--labels with no --eval labels the calibration folder, which then is the evaluation data of
+    every pass: the accuracy, the sensitivity sweep and the repair search (it used to ignore them)."""
+    from qfit.search import repair
+    calib = npy_folder(tmp_path / "calib", count=12)
+    labels = tmp_path / "labels.csv"
+    labels.write_text("file,label\n" + "".join(f"sample_{i:03d}.npy,{i % 4}\n" for i in range(12)))
+    seen = []
+    real_init = repair.DropMeter.__init__
+
+    def recording_init(self, *args, **kwargs):
+        real_init(self, *args, **kwargs)
+        seen.append(self.labelled)
+
+    monkeypatch.setattr(repair.DropMeter, "__init__", recording_init)
+    # a negative target asks int8 to beat float: the drop is above it, so the search runs
+    code, _, err, _ = run_qfit(capfd, check_args(model, calib, tmp_path / "out", "--labels", labels,
+                                                 "--max-drop", "-100"))
+    assert code == 1, err
+    report = json.loads((tmp_path / "out" / "report.json").read_text())
+    assert report["accuracy"]["metric"] == "top1" and report["evaluation"]["labels"] == "csv"
+    assert "search" in report["repair"]
+    assert seen and all(seen), seen
+
+
+def test_bad_input_batch_above_one_through_the_sensitivity_sweep(tmp_path, capfd):
+    """A dynamic batch fixed at 4 with --input-shape: the data passes and the one-layer-at-a-time
+    sweep run batches of 4 (the sweep used to assume batch 1)."""
+    path = conv_model(input_dims=["N", 3, 8, 8], folder=tmp_path, name="batched.onnx")
+    batched = onnx.load(path)
+    batched.graph.output[0].type.tensor_type.shape.dim[0].dim_param = "N"
+    _save(batched, path)
+    calib = npy_folder(tmp_path / "calib", shape=(3, 8, 8), count=8)
+    for k in range(4):
+        npy_folder(tmp_path / "eval" / f"class_{k}", shape=(3, 8, 8), count=3, seed=k + 1)
+    code, _, err, _ = run_qfit(capfd, check_args(path, calib, tmp_path / "out", "--input-shape", "x=4x3x8x8",
+                                                 "--eval", tmp_path / "eval"))
+    assert code in (0, 1), err
+    assert "Traceback" not in err
+    report = json.loads((tmp_path / "out" / "report.json").read_text())
+    assert report["model"]["inputs"]["x"] == [4, 3, 8, 8]
+    assert report["sensitivity"]["samples_used"] > 0
