@@ -271,10 +271,14 @@ int main(int argc, char **argv)
         check_layer(i);
     for (i = 0; i < QMODEL_LAYER_INPUT_COUNT; ++i)
         printf("I %lu\n", (unsigned long)qmodel_layer_inputs[i]);
-    if (argc == 2) {   /* dump every array as stored, in directory order, for the round trip */
+    if (argc == 2) {   /* dump every array as stored (directory order), then every tensor and layer name */
         FILE *f = fopen(argv[1], "wb");
         for (i = 0; f && i < QMODEL_ARRAY_COUNT; ++i)
             fwrite(qmodel_arrays[i].data, qmodel_arrays[i].elem_bytes, qmodel_arrays[i].count, f);
+        for (i = 0; f && i < QMODEL_TENSOR_COUNT; ++i)
+            fwrite(qmodel_tensors[i].name, 1, strlen(qmodel_tensors[i].name) + 1, f);
+        for (i = 0; f && i < QMODEL_LAYER_COUNT; ++i)
+            fwrite(qmodel_layers[i].name, 1, strlen(qmodel_layers[i].name) + 1, f);
         CHECK(f != NULL && fclose(f) == 0, "cannot write %s", argv[1]);
     }
     printf("%s %d failures\n", failures ? "FAILED" : "ok", failures);
@@ -352,14 +356,20 @@ def tables_match_manifest(stdout: str, manifest: dict) -> None:
 
 def dumped_arrays(path, manifest: dict) -> dict[str, np.ndarray]:
     """Arrays as the compiled object holds them (the check program's dump), by name."""
+    return read_dump(path, manifest)[0]
+
+
+def read_dump(path, manifest: dict) -> tuple[dict[str, np.ndarray], list[bytes]]:
+    """(arrays by name, the tensor then layer names as the compiled strings hold them)."""
     data = open(path, "rb").read()
     out, at = {}, 0
     for array in manifest["arrays"]:
         dtype = np.dtype("<i1" if array["type"] == "int8_t" else "<i4")
         out[array["name"]] = np.frombuffer(data, dtype=dtype, count=array["count"], offset=at).astype(np.int64)
         at += array["count"] * dtype.itemsize
-    assert at == len(data)
-    return out
+    names = data[at:].split(b"\0")
+    assert names[-1] == b"" and len(names) - 1 == len(manifest["tensors"]) + len(manifest["layers"])
+    return out, names[:-1]
 
 
 # ---- round trip: export -> QDQ graph -> integer path ---------------------------------------------
@@ -401,16 +411,20 @@ def qdq_from_export(manifest: dict, arrays: dict[str, np.ndarray], opset: int = 
     for layer in manifest["layers"]:
         _layer_nodes(layer, manifest, arrays, nodes, const, dq)
         y, out = f"l{layer['index']}_y", layer["output"]
-        t = tensors[out]
-        if (layer["act_min"], layer["act_max"]) != (-128, 127):   # the clamp as a float Clip the quantizer maps back
-            bounds = [np.float32((v - t["zero_point"]) * np.float32(t["scale"])) for v in (layer["act_min"], layer["act_max"])]
-            nodes.append(helper.make_node("Clip", [y, const(f"{y}_lo", bounds[0]), const(f"{y}_hi", bounds[1])], [y + "c"]))
+        if layer["kind"] != "CLAMP" and (layer["act_min"], layer["act_max"]) != (-128, 127):
+            nodes.append(helper.make_node("Clip", [y, *clamp_bounds(layer, tensors[out], const)], [y + "c"]))
             y += "c"
         nodes.append(helper.make_node("QuantizeLinear", [y, *quantizer(out)], [f"t{out}_q"]))
     inputs = [helper.make_tensor_value_info(f"t{i}_in", TensorProto.FLOAT, tensors[i]["shape"]) for i in manifest["inputs"]]
     outputs = [helper.make_tensor_value_info(f"t{i}_q", TensorProto.INT8, tensors[i]["shape"]) for i in manifest["outputs"]]
     graph = helper.make_graph(nodes, "from_export", inputs, outputs, inits)
     return helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
+
+
+def clamp_bounds(layer: dict, tensor: dict, const) -> list[str]:
+    """A layer's int8 clamp as float Clip bounds that the output's quantizer maps back onto it."""
+    return [const(f"l{layer['index']}_{side}", np.float32((v - tensor["zero_point"]) * np.float32(tensor["scale"])))
+            for side, v in (("lo", layer["act_min"]), ("hi", layer["act_max"]))]
 
 
 def _layer_nodes(layer: dict, manifest: dict, arrays: dict, nodes: list, const, dq) -> None:
@@ -449,8 +463,8 @@ def _layer_nodes(layer: dict, manifest: dict, arrays: dict, nodes: list, const, 
     elif kind == "RESHAPE":
         shape = const(f"l{i}_shape", np.array(tensors[layer["output"]]["shape"], np.int64))
         nodes.append(helper.make_node("Reshape", [ins[0], shape], [y]))
-    elif kind == "CLAMP":
-        nodes.append(helper.make_node("Identity", ins, [y]))   # the clamp itself follows (act_min/act_max)
+    elif kind == "CLAMP":   # the clamp itself is added after the layer (act_min, act_max)
+        nodes.append(helper.make_node("Clip", [ins[0], *clamp_bounds(layer, tensors[layer["output"]], const)], [y]))
     else:
         raise AssertionError(f"no rebuild for {kind}")
 

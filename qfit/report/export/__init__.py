@@ -28,7 +28,7 @@ class ExportOptions:
             raise QfitError(f"--prefix: '{self.prefix}' is not a C identifier of letters, digits and single "
                             "underscores, starting with a letter, at most 24 characters")
         if self.alignment < 1 or self.alignment & (self.alignment - 1) or self.alignment > 4096:
-            raise QfitError(f"--alignment: must be a power of two from 1 to 4096, got {self.alignment}")
+            raise QfitError(f"--export-alignment: must be a power of two from 1 to 4096, got {self.alignment}")
 
 
 def build(model: onnx.ModelProto, path: str, budget_result=None, budget_options=None,
