@@ -279,7 +279,7 @@ def calibrate(loaded: LoadedModel, plan: Plan, data: DataFolder, batch_size: int
 def needs_histograms(options: CheckOptions) -> bool:
     """Only the min-max method can do without histograms, and only when no repair search may try
     the other methods on the same statistics."""
-    return options.method != "minmax" or (gate_options(options).enabled and options.repair)
+    return options.method != "minmax" or (repair_target(options) is not None and options.repair)
 
 
 def calibration_stage(options: CheckOptions, loaded: Loaded, planned: Planned) -> Calibration:
@@ -426,11 +426,13 @@ def _repair_section(target, reason: str, reached=None, drop=None) -> dict:
 def repair_search(options: CheckOptions, planned: Planned, quantized: Quantized, evaluation: Evaluation,
                   ranking: list[str], counter: repairs.ByteCounter) -> tuple[dict, PlanOptions | None]:
     """The report section "repair" and the PlanOptions the search chose (None when nothing changed)."""
-    target, accuracy = gates.target_drop_pt(gate_options(options)), evaluation.accuracy
+    target, accuracy = repair_target(options), evaluation.accuracy
     drop = classification_drop(accuracy)
     if target is None:
-        return _repair_section(None, "accuracy gate switched off (--no-accuracy-gate): no target to repair "
-                                     "towards", drop=drop), None
+        why = ("accuracy gate switched off (--no-accuracy-gate)" if not options.accuracy_gate else
+               "no --max-drop given: the default gate judges the drop, the repair searches only towards a "
+               "target you give")
+        return _repair_section(None, f"{why}: no target to repair towards", drop=drop), None
     if drop is None:
         return _repair_section(target, "the model output is a score, not classes: there is no accuracy drop "
                                        "for --max-drop to bound"), None
@@ -495,6 +497,12 @@ def finished_repair(section: dict, evaluation: Evaluation, budgeted: Budget) -> 
         section["reason"] += (f"; on the full evaluation set ({evaluation.accuracy.get('samples')} samples) the "
                               f"drop is {final:.2f} pt, the search used {searched.get('samples')} samples")
     return section
+
+
+def repair_target(options: CheckOptions) -> float | None:
+    """The drop the repair searches towards: only one the user gave (a search costs minutes, and the
+    default gate's job is to judge)."""
+    return options.max_drop_pt if options.accuracy_gate else None
 
 
 def gate_options(options: CheckOptions) -> gates.GateOptions:
