@@ -4,10 +4,11 @@ The plan is the single record of precision choices. The quantizer turns it into 
 budget counts bytes from it, and the repair search edits it (keep a layer float, give a tensor 16-bit
 activations, another calibration method for a tensor) and asks both again.
 
-Rules (all from the operator table in qfit.ops):
+Rules (all from the operator registry in qfit.ops):
   * a node is quantized when its op type is in the table and it is not listed in `float_nodes`;
   * an activation tensor produced by a quantized node is stored as an integer, unless it is "fused":
-    its only consumer is a ReLU/ReLU6 that the producer's integer kernel applies as its output clamp;
+    its only consumer is a ReLU-family clamp (ops.is_fusable_clamp: Relu, or Clip with a lower bound
+    >= 0) that the producer's integer kernel applies as its output clamp;
   * a graph input, or a tensor produced by a float node, is stored as an integer when a quantized node
     reads it as a quantized input; otherwise it stays float32;
   * an output of a "shared" op (MaxPool, Reshape, ...) takes the quantizer of its first input;
@@ -150,25 +151,31 @@ def make_plan(loaded: LoadedModel, options: PlanOptions | None = None) -> Plan:
                 if plan.activations[source].bits == options.activation_bits.get(out, 8):
                     shared_from = source
             plan.activations[out] = new_quant(out, shared_from)
-        if node.name not in quantized:
-            continue
-        for index, axis_rule in entry.weights.items():
-            if index >= len(node.input) or node.input[index] not in loaded.constants:
-                continue
-            tensor = node.input[index]
-            if loaded.constants[tensor].dtype != np.float32:
-                continue
-            shape = loaded.constants[tensor].shape
-            axis = axis_rule(node, shape) if options.per_channel else None
-            plan.weights[(node.name, index)] = WeightQuant(node.name, index, tensor, axis)
-        if entry.bias is not None and entry.bias < len(node.input) and node.input[entry.bias]:
-            bias = node.input[entry.bias]
-            weight = plan.weights.get((node.name, 1))
-            if (bias in loaded.constants and weight is not None and node.input[0] in plan.activations
-                    and loaded.constants[bias].ndim == 1):
-                plan.biases[(node.name, entry.bias)] = bias
+        if node.name in quantized:
+            _add_weights(plan, node, loaded, options)
     _match_input_scales(plan, graph, quantized, graph_index, set(loaded.input_names) | outputs)
     return plan
+
+
+def _add_weights(plan: Plan, node: NodeProto, loaded: LoadedModel, options: PlanOptions) -> None:
+    """The int8 weights of a quantized node (per channel along the registry's axis, or per tensor)
+    and its int32 bias, when its input and weight are quantized."""
+    entry = ops.of(node)
+    for index, axis_rule in entry.weights.items():
+        if index >= len(node.input) or node.input[index] not in loaded.constants:
+            continue
+        tensor = node.input[index]
+        if loaded.constants[tensor].dtype != np.float32:
+            continue
+        shape = loaded.constants[tensor].shape
+        axis = axis_rule(node, shape) if options.per_channel else None
+        plan.weights[(node.name, index)] = WeightQuant(node.name, index, tensor, axis)
+    if entry.bias is not None and entry.bias < len(node.input) and node.input[entry.bias]:
+        bias = node.input[entry.bias]
+        weight = plan.weights.get((node.name, 1))
+        if (bias in loaded.constants and weight is not None and node.input[0] in plan.activations
+                and loaded.constants[bias].ndim == 1):
+            plan.biases[(node.name, entry.bias)] = bias
 
 
 def _match_input_scales(plan: Plan, graph, quantized: set[str], index: GraphIndex, fixed: set[str]) -> None:
