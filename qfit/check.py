@@ -19,7 +19,7 @@ from qfit.data import DataFolder, Preprocess
 from qfit.errors import QfitError
 from qfit.graph.load import LoadedModel, load_model
 from qfit.runtime.opset_support import check_runtime_opset
-from qfit.measure import gate as gates, sensitivity
+from qfit.measure import gate as gates, integer, sensitivity
 from qfit.measure.evaluate import (compared_layers, end_metrics_only, evaluate, fill_layer_rows, output_kind,
                                    progress_bar, sample_of)
 from qfit.memory import budget as memory_budget
@@ -52,6 +52,8 @@ class CheckOptions:
     seed: int = 0
     batch_size: int = 16
     threads: int = 0                  # onnxruntime intra-op threads per session (0 = its default)
+    arithmetic: str = "integer"       # int8 figures from the integer path, or "float" (the float preview)
+    rounding: str = "double"          # the integer path's requantization rounding: "double" or "single"
     per_channel: bool = True
     symmetric_activations: bool = False
     max_drop_pt: float | None = None  # None: the default gate (qfit.measure.gate.DEFAULT_MAX_DROP_PT)
@@ -133,6 +135,7 @@ class Evaluation:
     accuracy: dict
     predictions: dict | None      # paired per-sample predictions {"float", "int8", "labels"}
     path: str = FAITHFUL_PATH     # the arithmetic that produced the figures
+    arithmetic: dict = field(default_factory=dict)  # qfit.measure.integer.arithmetic_section
 
 
 @dataclass(frozen=True)
@@ -232,6 +235,7 @@ def load_stage(options: CheckOptions) -> Loaded:
     if options.method not in METHODS:
         raise QfitError(f"--method: unknown method '{options.method}' (choose from {', '.join(METHODS)})")
     check_analysis_options(options)
+    integer.check_arithmetic_options(options.arithmetic, options.rounding)
     paths = OutputPaths.of(options)
     model_real = os.path.realpath(options.model_path)
     for path in paths.as_dict().values():
@@ -324,7 +328,8 @@ def quantize_stage(options: CheckOptions, loaded: Loaded, planned: Planned, cali
     reference = loaded.model
 
     def measured(model: QuantizedModel) -> dict:
-        return end_metrics_only(reference, model, eval_data, batch, options.threshold, options.progress, threads)
+        return end_metrics_only(reference, model, eval_data, batch, options.threshold, options.progress, threads,
+                                options.arithmetic, options.rounding)
 
     before = measured(quantized)
     if options.equalize:
@@ -352,10 +357,15 @@ def quantize_stage(options: CheckOptions, loaded: Loaded, planned: Planned, cali
 def evaluation_stage(options: CheckOptions, quantized: Quantized, data: DataFolder, reused: bool) -> Evaluation:
     layers = compared_layers(quantized.reference, quantized.plan)
     accuracy, sums = evaluate(quantized.reference, quantized.model, layers, data, options.batch_size,
-                              options.threshold, options.progress, options.threads)
+                              options.threshold, options.progress, options.threads, options.arithmetic,
+                              options.rounding)
     fill_layer_rows(quantized.quantizer.loaded, quantized.plan, layers, sums)
+    requantization = integer.layer_requantization(quantized.model.model)
+    for row in layers:
+        row["requantization"] = requantization.get(row["name"])
     predictions = accuracy.pop("predictions", None)
-    return Evaluation(data, reused, layers, accuracy, predictions)
+    arithmetic = accuracy.pop("arithmetic")
+    return Evaluation(data, reused, layers, accuracy, predictions, arithmetic["path"], arithmetic)
 
 
 def budget_stage(options: CheckOptions, quantized: Quantized) -> Budget:
@@ -411,6 +421,8 @@ def sensitivity_section(options: CheckOptions, quantized: Quantized, evaluation:
         swept = sensitivity.sweep(quantized.reference, quantized.plan, quantized.model, layers, sample,
                                   options.batch_size, kind, accuracy.get("samples"), cap, bar, options.threads)
     rows = swept.pop("rows")
+    # one switch model serves every configuration of the sweep; it runs on the float preview
+    swept["evaluation_path"] = integer.evaluation_path("float", options.rounding)
     return swept, rows
 
 

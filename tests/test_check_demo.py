@@ -66,7 +66,9 @@ def test_demo_report_has_the_documented_keys_and_sizes(demo_run):
     for key in ("metric", "float", "int8", "drop_pt", "samples"):
         assert key in report["accuracy"]
     assert report["accuracy"]["samples"] > 0
-    assert "evaluation_path" in report and "disable_quant_qdq" in report["evaluation_path"]
+    # the figures come from the integer path by default, and the report names its rounding
+    assert report["evaluation_path"].startswith("integer") and "double rounding" in report["evaluation_path"]
+    assert report["arithmetic"]["arithmetic"] == "integer" and report["arithmetic"]["rounding"] == "double"
     assert report["tool_version"]
     assert report["layers"] and all({"name", "op_type", "weight_bytes_int8", "sqnr_db"} <= set(r) for r in report["layers"])
     # The demo is sized so that float32 weights do not fit 1 MiB and int8 weights do.

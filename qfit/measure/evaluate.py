@@ -3,7 +3,8 @@
 `compared_layers` lists the rows of the per-layer table (which tensor each layer's error is measured
 on); `evaluate` runs both models over the evaluation data once and fills the error sums of every row
 and the end metrics (qfit.measure.compare); `end_metrics_only` is the same without per-layer tensors.
-Every int8 figure comes from the faithful onnxruntime path (qfit.runtime.sessions.FAITHFUL_PATH).
+Every int8 figure comes from the selected arithmetic: the integer path (qfit.measure.integer, the default)
+or the float preview (the faithful onnxruntime path, qfit.runtime.sessions.FAITHFUL_PATH).
 """
 from __future__ import annotations
 
@@ -15,6 +16,7 @@ from tqdm import tqdm
 
 from qfit.data import DataFolder
 from qfit.graph.load import LoadedModel
+from qfit.measure import integer
 from qfit.measure.compare import EndMetrics, ErrorSums
 from qfit.quant.plan import Plan
 from qfit.quant.quantize import QuantizedModel
@@ -71,16 +73,22 @@ def compared_layers(loaded: LoadedModel, plan: Plan) -> list[dict]:
 
 def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict], data: DataFolder,
              batch_size: int, threshold: float | None = None, progress: bool = True,
-             threads: int = 0) -> tuple[dict, dict[str, ErrorSums]]:
-    """Float and faithful int8 passes over `data`: end metrics and accumulated per-layer errors."""
+             threads: int = 0, arithmetic: str = "integer", rounding: str = "double",
+             compare_preview: bool = True) -> tuple[dict, dict[str, ErrorSums]]:
+    """Float and int8 passes over `data`: end metrics and accumulated per-layer errors. The int8 pass
+    runs in the selected arithmetic (qfit.measure.integer: the integer path, or the float preview);
+    the end metrics carry the report's "arithmetic" section under the key "arithmetic" (with the
+    integer path, `compare_preview` also runs the float preview to count changed predictions)."""
     output = loaded.output_names[0]
     tensors = list(dict.fromkeys([row["tensor"] for row in layers] + [output]))
     int8_names = [quantized.dequantized.get(t, t) for t in tensors]
     int8_output = quantized.dequantized.get(output, output)
     float_runner = Runner(loaded.model, tensors, batch_size=batch_size, threads=threads)
-    int8_runner = Runner(quantized.model, int8_names, faithful=True, batch_size=batch_size, threads=threads)
+    int8_runner = integer.quantized_runner(quantized.model, int8_names, arithmetic, rounding, batch_size, threads)
     sums = {t: ErrorSums() for t in tensors}
     metrics = EndMetrics(output_kind(loaded), threshold)
+    preview = integer.PreviewComparison(quantized.model, int8_output, arithmetic if compare_preview else "float",
+                                        output_kind(loaded) == "classification", batch_size, threads)
     input_name = loaded.input_names[0]
     reconstruction = loaded.shapes.get(output) == loaded.shapes.get(input_name)
 
@@ -103,19 +111,24 @@ def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict],
         for batch in data.batches(batch_size):
             reference = float_runner(batch.inputs)
             got = int8_runner(batch.inputs)
+            preview.update(batch.inputs, got[int8_output])
             if pending is not None:
                 pending.result()
             pending = worker.submit(absorb, batch, reference, got)
             bar.update(len(batch.files))
         if pending is not None:
             pending.result()
-    return metrics.result(), sums
+    result = metrics.result()
+    result["arithmetic"] = integer.arithmetic_section(arithmetic, rounding, int8_runner, preview)
+    return result, sums
 
 
 def end_metrics_only(reference: LoadedModel, quantized: QuantizedModel, data: DataFolder, batch_size: int,
-                     threshold: float | None = None, progress: bool = True, threads: int = 0) -> dict:
+                     threshold: float | None = None, progress: bool = True, threads: int = 0,
+                     arithmetic: str = "integer", rounding: str = "double") -> dict:
     """Drop, int8 figure and output SQNR of one QDQ model (no per-layer tensors)."""
-    accuracy, _ = evaluate(reference, quantized, [], data, batch_size, threshold, progress, threads)
+    accuracy, _ = evaluate(reference, quantized, [], data, batch_size, threshold, progress, threads,
+                           arithmetic, rounding, compare_preview=False)
     return {k: accuracy[k] for k in END_METRIC_KEYS if k in accuracy}
 
 

@@ -25,10 +25,11 @@ import onnx
 import onnxruntime as ort
 from onnx import NodeProto, TensorProto, helper, numpy_helper
 
+from qfit.errors import QfitError
 from qfit.ops import attr
 from qfit.ops.kernels import Grid, Operand, Prepared, kernel_for
 from qfit.quant import fixed_point
-from qfit.runtime.sessions import session_options
+from qfit.runtime.sessions import Runner, session_options
 
 ARITHMETICS = ("integer", "float")
 ROUNDINGS = fixed_point.ROUNDINGS
@@ -385,3 +386,71 @@ def layer_requantization(model: onnx.ModelProto) -> dict[str, dict]:
     """Per node of the QDQ `model` that runs in integers: its fixed-point multipliers and shifts
     (`multiplier`, `shift`: one per output channel; Add also per input) as report.json lists them."""
     return dict(IntegerProgram(model, "double").requantization)
+
+
+# ---- the evaluation's choice of arithmetic (qfit.measure.evaluate, qfit.check) --------------------
+
+def check_arithmetic_options(arithmetic: str, rounding: str) -> None:
+    """One-line errors for --arithmetic and --rounding."""
+    if arithmetic not in ARITHMETICS:
+        raise QfitError(f"--arithmetic: unknown arithmetic '{arithmetic}' (choose from {', '.join(ARITHMETICS)})")
+    if rounding not in ROUNDINGS:
+        raise QfitError(f"--rounding: unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
+
+
+def quantized_runner(model: onnx.ModelProto, outputs: list[str], arithmetic: str = "integer",
+                     rounding: str = "double", batch_size: int = 16, threads: int = 0):
+    """The runner of the QDQ model in the selected arithmetic: the integer path, or the float preview."""
+    if arithmetic == "float":
+        return Runner(model, outputs, faithful=True, batch_size=batch_size, threads=threads)
+    return IntegerRunner(model, outputs, rounding, batch_size)
+
+
+class PreviewComparison:
+    """With the integer path selected: the float preview of the same model over the same samples, and
+    how many samples change their prediction (argmax of the first output) between the two."""
+
+    def __init__(self, model: onnx.ModelProto, output: str, arithmetic: str, classification: bool,
+                 batch_size: int = 16, threads: int = 0):
+        self.output = output
+        self.enabled = arithmetic == "integer"
+        self.classification = classification
+        self.runner = Runner(model, [output], faithful=True, batch_size=batch_size, threads=threads) \
+            if self.enabled else None
+        self.samples = 0
+        self.changed = 0
+        self.max_abs_output_difference = 0.0
+
+    def update(self, inputs: dict[str, np.ndarray], integer_output: np.ndarray) -> None:
+        if not self.enabled:
+            return
+        preview = self.runner(inputs)[self.output]
+        n = preview.shape[0]
+        self.samples += n
+        if preview.size:
+            self.max_abs_output_difference = max(self.max_abs_output_difference,
+                                                 float(np.max(np.abs(preview - integer_output))))
+        if self.classification:
+            self.changed += int(np.sum(np.argmax(preview.reshape(n, -1), axis=1)
+                                       != np.argmax(integer_output.reshape(n, -1), axis=1)))
+
+    def result(self) -> dict | None:
+        if not self.enabled:
+            return None
+        return {"samples": self.samples,
+                "prediction_changes": self.changed if self.classification else None,
+                "prediction_changes_pct": (round(100.0 * self.changed / self.samples, 4)
+                                           if self.classification and self.samples else None),
+                "max_abs_output_difference": self.max_abs_output_difference}
+
+
+def arithmetic_section(arithmetic: str, rounding: str, runner, comparison: PreviewComparison | None) -> dict:
+    """The report's "arithmetic" section: what computed the int8 figures, and how they compare."""
+    section = {"arithmetic": arithmetic, "rounding": rounding if arithmetic == "integer" else None,
+               "path": evaluation_path(arithmetic, rounding)}
+    if arithmetic == "integer":
+        program = runner.program
+        section.update({"integer_nodes": len(program.integer_nodes), "float_nodes": list(program.float_nodes),
+                        "accumulator_overflows": dict(program.arithmetic.overflows),
+                        "float_preview": comparison.result() if comparison is not None else None})
+    return section

@@ -33,6 +33,7 @@ def build_report(result: CheckResult) -> dict:
         "calibration": result.calibration.data.describe(),
         "evaluation": {**evaluation.data.describe(), "reused_calibration_data": evaluation.reused_calibration_data},
         "evaluation_path": evaluation.path,
+        "arithmetic": evaluation.arithmetic,
         **{k: v for k, v in memory.items() if k != "model"},
         "accuracy": evaluation.accuracy,
         "layers": layers,
