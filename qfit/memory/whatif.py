@@ -123,6 +123,7 @@ def _consistent(loaded: LoadedModel, shapes: dict) -> bool:
 
 
 def resolution_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions) -> dict:
+    """The largest input size (same aspect ratio) whose arena fits the SRAM limit, per size step."""
     found, why = _image_input(loaded)
     if found is None:
         return {"skipped": why}
@@ -131,11 +132,14 @@ def resolution_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions) 
     light = _light_model(loaded)
     limit = options.sram_limit_bytes
     quick = BudgetOptions(**{**options.__dict__, "what_if": False,
-                                    "order_time_limit_s": min(options.order_time_limit_s, WHAT_IF_ORDER_TIME_LIMIT_S)})
+                             "order_time_limit_s": min(options.order_time_limit_s, WHAT_IF_ORDER_TIME_LIMIT_S)})
     tried: dict[tuple[int, int], dict] = {}
 
+    def width_at(h: int, step: int) -> int:
+        return max(step, int(round(h * w0 / h0 / step)) * step)
+
     def evaluate(h: int, step: int) -> dict:
-        w = max(step, int(round(h * w0 / h0 / step)) * step)
+        w = width_at(h, step)
         if (h, w) in tried:
             return tried[(h, w)]
         new_shape = list(shape)
@@ -154,9 +158,24 @@ def resolution_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions) 
         return row
 
     current = evaluate(h0, 1)
+    answers = _search_heights(evaluate, lambda h, step: (h, width_at(h, step)) not in tried, h0, current["fits"])
+    return {
+        "input": name,
+        "current": {"height": h0, "width": w0, "arena_bytes": current["arena_bytes"], "fits": current["fits"]},
+        "criterion": "arena bytes <= SRAM limit, same aspect ratio, both sides multiples of the step",
+        "searched": "larger sizes" if current["fits"] else "smaller sizes",
+        "largest_fitting": {f"step_{s}": answers.get(s) for s in sorted(RESOLUTION_STEPS)},
+        "tried": [tried[k] for k in sorted(tried, reverse=True)],
+    }
+
+
+def _search_heights(evaluate, is_new, h0: int, current_fits: bool | None) -> dict[int, dict | None]:
+    """Per step of RESOLUTION_STEPS, the first height (a multiple of the step) whose row fits: the
+    largest smaller one when the current size does not fit, else the largest larger one (None when
+    nothing larger fits). At most MAX_RESOLUTION_TRIES sizes are evaluated."""
     answers = {}
     step_small = min(RESOLUTION_STEPS)
-    if current["fits"]:
+    if current_fits:
         heights = list(range((2 * h0) // step_small * step_small, h0, -step_small))   # larger sizes that may fit
     else:
         heights = list(range((h0 - 1) // step_small * step_small, 0, -step_small))
@@ -167,24 +186,15 @@ def resolution_what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions) 
                 continue
             if budget_left <= 0:
                 break
-            if (h, max(step, int(round(h * w0 / h0 / step)) * step)) not in tried:
+            if is_new(h, step):
                 budget_left -= 1
             row = evaluate(h, step)
             if row["fits"]:
                 answers[step] = row
                 break
-            if row["fits"] is None:
-                continue
-        if step not in answers and current["fits"]:
+        if step not in answers and current_fits:
             answers[step] = None   # nothing larger fits: the current size is the answer
-    return {
-        "input": name,
-        "current": {"height": h0, "width": w0, "arena_bytes": current["arena_bytes"], "fits": current["fits"]},
-        "criterion": "arena bytes <= SRAM limit, same aspect ratio, both sides multiples of the step",
-        "searched": "larger sizes" if current["fits"] else "smaller sizes",
-        "largest_fitting": {f"step_{s}": answers.get(s) for s in sorted(RESOLUTION_STEPS)},
-        "tried": [tried[k] for k in sorted(tried, reverse=True)],
-    }
+    return answers
 
 
 # ---- (b) tiled leading layers -------------------------------------------------------------------
