@@ -406,3 +406,10 @@ def test_bad_input_batch_above_one_through_the_sensitivity_sweep(tmp_path, capfd
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     assert report["model"]["inputs"]["x"] == [4, 3, 8, 8]
     assert report["sensitivity"]["samples_used"] > 0
+
+
+def test_bad_input_missing_model_with_a_non_utf8_name_is_one_readable_line(tmp_path, capfd, calib):
+    missing = os.fsdecode(os.path.join(os.fsencode(str(tmp_path)), b"gone\xff.onnx"))
+    message = assert_refused(capfd, check_args(missing, calib, tmp_path / "out"), tmp_path / "out",
+                             "no such file")
+    assert "gone\\xff.onnx" in message

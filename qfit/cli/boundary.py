@@ -68,9 +68,11 @@ _ADDRESS = re.compile(r"\s*\bat 0x[0-9a-fA-F]+|\b0x[0-9a-fA-F]{8,}\b")
 
 
 def user_message(text: str) -> str:
-    """A refusal as the user sees it: no memory addresses (`<object at 0x7f...>` says nothing to
-    them and changes from run to run), capped in length with the cut marked."""
-    text = _ADDRESS.sub("", text)
+    """A refusal as the user sees it: names spelled as in the reports, no memory addresses
+    (`<object at 0x7f...>` says nothing to them and changes from run to run), capped in length with
+    the cut marked."""
+    from qfit.files import printable_text
+    text = _ADDRESS.sub("", printable_text(text))  # a non-UTF-8 file name shows as \xff, as in the reports
     if len(text) > MAX_MESSAGE_CHARS:
         cut = f"... ({len(text)} characters)"
         text = text[:MAX_MESSAGE_CHARS - len(cut)] + cut
