@@ -203,7 +203,17 @@ def search_order(problem: MemoryProblem, time_limit_s: float = 2.0, max_states: 
         peak = peak_of(problem, candidate)
         if peak < best_peak:
             best_order, best_peak = candidate, peak
-    # Best-first search on (peak so far); prune anything not strictly better than the incumbent.
+    best_order, best_peak, finished, explored = _best_first(search, best_order, best_peak, deadline, max_states)
+    if best_peak >= default_peak:
+        best_order, best_peak = default, default_peak
+    return OrderResult(best_order, best_peak, default_peak, "exact" if finished else "heuristic",
+                       best_order != default, explored)
+
+
+def _best_first(search: "_Search", best_order: list[int], best_peak: int, deadline: float, max_states: int
+                ) -> tuple[list[int], int, bool, int]:
+    """Best-first search on (peak so far) from the incumbent `best_order`; anything not strictly
+    better than the incumbent is pruned. Returns (order, peak, finished, states explored)."""
     start_ready = tuple(sorted(search.sources))
     best_at: dict[int, int] = {0: 0}
     parent: dict[int, tuple[int, int]] = {}
@@ -240,10 +250,7 @@ def search_order(problem: MemoryProblem, time_limit_s: float = 2.0, max_states: 
             counter += 1
             heapq.heappush(heap, (new_peak, -bin(nxt).count("1"), counter, nxt, after,
                                   search.ready_after(ready, done, v)))
-    if best_peak >= default_peak:
-        best_order, best_peak = default, default_peak
-    return OrderResult(best_order, best_peak, default_peak, "exact" if finished else "heuristic",
-                       best_order != default, explored)
+    return best_order, best_peak, finished, explored
 
 
 BEAM_WIDTH = 48
