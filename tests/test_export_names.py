@@ -21,8 +21,8 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from qfit.cli.main import main
-from test_export import (C99_STRICT, CC, build_check_program, check_multipliers, assert_round_trip,  # noqa: F401
-                         manifest_values, needs_cc, read_dump, run_cc, tables_match_manifest)
+from test_export import (assert_round_trip, build_check_program, check_multipliers, manifest_values, needs_cc,
+                         read_dump, run_cc, tables_match_manifest)
 
 HOSTILE = {
     "input": 'in"put */ \\ \u00e9\n',
