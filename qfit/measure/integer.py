@@ -26,6 +26,7 @@ import onnxruntime as ort
 from onnx import NodeProto, TensorProto, helper, numpy_helper
 
 from qfit.errors import QfitError
+from qfit import ops
 from qfit.ops import attr
 from qfit.ops.kernels import Grid, Operand, Prepared, kernel_for
 from qfit.quant import fixed_point
@@ -42,7 +43,6 @@ FLOAT_PREVIEW_PATH = ("float preview: onnxruntime CPU with QDQ fusion disabled (
 
 _INT_RANGE = {TensorProto.INT8: (-128, 127), TensorProto.UINT8: (0, 255), TensorProto.INT16: (-32768, 32767),
               TensorProto.UINT16: (0, 65535), TensorProto.INT32: (-(1 << 31), (1 << 31) - 1)}
-_CLAMPS = ("Relu", "Clip")
 
 
 def evaluation_path(arithmetic: str, rounding: str) -> str:
@@ -147,17 +147,14 @@ def _grid_of(node: NodeProto, inits: dict, value_dtype: int | None) -> Grid | No
 
 
 def _clamp_bounds(node: NodeProto, inits: dict) -> tuple[float, float] | None:
-    """Real bounds of a ReLU or a Clip with constant bounds (None when they are not constants)."""
-    if node.op_type == "Relu":
-        return 0.0, float("inf")
-    bounds = [attr(node, "min", float("-inf")), attr(node, "max", float("inf"))]
-    for k, index in enumerate((1, 2)):
-        if len(node.input) > index and node.input[index]:
-            value = inits.get(node.input[index])
-            if value is None or value.size != 1:
-                return None
-            bounds[k] = value.reshape(-1)[0]
-    return float(bounds[0]), float(bounds[1])
+    """Real bounds of a ReLU-family clamp (the registry's `clamp_bounds`), None when they are not
+    constants or the node is no clamp."""
+    rule = ops.of(node).clamp_bounds
+    bounds = rule(node, inits.get) if rule is not None else None
+    if bounds is None:
+        return None
+    low, high = bounds
+    return (float("-inf") if low is None else float(low)), (float("inf") if high is None else float(high))
 
 
 def _narrow(grid: Grid, bounds: tuple[float, float]) -> Grid:
@@ -177,8 +174,9 @@ class IntegerProgram:
         graph = model.graph
         inits = {i.name: numpy_helper.to_array(i) for i in graph.initializer}
         for node in graph.node:
-            if node.op_type == "Constant" and node.attribute and node.attribute[0].name == "value":
-                inits[node.output[0]] = numpy_helper.to_array(node.attribute[0].t)
+            value = ops.of(node).constant_value(node) if ops.of(node).constant_value else None
+            if value is not None:
+                inits[node.output[0]] = value
         try:
             inferred = onnx.shape_inference.infer_shapes(model)
             infos = list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output)
@@ -225,7 +223,7 @@ class IntegerProgram:
         self.pre_quantizer: dict[str, str] = {}   # float name of an integer step's output -> its Q output
         produced, absorbed = set(), set()
         for node in graph.node:
-            if node.op_type == "Constant" or id(node) in absorbed:
+            if node.output and node.output[0] in inits or id(node) in absorbed:
                 continue
             if node.op_type == "DequantizeLinear" and (node.output[0] in integer_constants
                                                         or node.output[0] in self.dequantized):
@@ -273,12 +271,10 @@ class IntegerProgram:
                 return None
             users = consumers.get(out, [])
             clamp = None
-            if (len(users) == 1 and users[0].op_type in _CLAMPS and users[0].output[0] not in graph_outputs
-                    and users[0].input[0] == out and node.op_type not in _CLAMPS):
+            bounds = _clamp_bounds(users[0], inits) if len(users) == 1 else None
+            if (bounds is not None and ops.of(node).takes_fused_activation and users[0].input[0] == out
+                    and users[0].output[0] not in graph_outputs):
                 clamp = users[0]
-                bounds = _clamp_bounds(clamp, inits)
-                if bounds is None:
-                    return None
                 users = consumers.get(clamp.output[0], [])
             if len(users) != 1 or users[0].op_type != "QuantizeLinear" or users[0].output[0] not in self.quantizers:
                 return None

@@ -6,6 +6,7 @@ import numpy as np
 from onnx import NodeProto
 
 from qfit.ops.elementwise import POINTWISE
+from qfit.ops.kernels import elementwise as elementwise_kernels
 from qfit.ops.registry import ConstantOf, Op, attr, register
 
 
@@ -41,13 +42,15 @@ def _slope_axis(node: NodeProto, shape) -> int | None:
 
 
 register({
-    "Relu": Op(output="fused", clamp_bounds=_relu_bounds, export_kind="CLAMP", **POINTWISE),
-    "Clip": Op(output="fused", clamp_bounds=_clip_bounds, export_kind="CLAMP", **POINTWISE),
-    "LeakyRelu": Op(**POINTWISE),
+    "Relu": Op(integer_kernel=elementwise_kernels.build_lookup,
+               output="fused", clamp_bounds=_relu_bounds, export_kind="CLAMP", **POINTWISE),
+    "Clip": Op(integer_kernel=elementwise_kernels.build_lookup,
+               output="fused", clamp_bounds=_clip_bounds, export_kind="CLAMP", **POINTWISE),
+    "LeakyRelu": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
     "PRelu": Op(weights={1: _slope_axis}, note="slope stored as int8", **POINTWISE),
-    "Sigmoid": Op(**POINTWISE),
-    "HardSigmoid": Op(**POINTWISE),
-    "HardSwish": Op(**POINTWISE),
-    "Tanh": Op(**POINTWISE),
+    "Sigmoid": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
+    "HardSigmoid": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
+    "HardSwish": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
+    "Tanh": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
     "Softmax": Op(cost_kind="elementwise", cost=POINTWISE["cost"]),
 })

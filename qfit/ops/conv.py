@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto, TensorProto, helper, numpy_helper
 
+from qfit.ops.kernels import conv as conv_kernels
 from qfit.ops.registry import Equalization, Op, ShapeOf, attr, register
 from qfit.ops.windows import has_padding, tileable_by, window
 from qfit.sizes import element_count
@@ -92,7 +93,8 @@ _CONV_EQUALIZATION = Equalization(
 )
 
 register({
-    "Conv": Op(weights={1: _axis0}, bias=2, cost=_conv_macs, cost_kind="macs", takes_fused_activation=True,
+    "Conv": Op(integer_kernel=conv_kernels.build_conv,
+               weights={1: _axis0}, bias=2, cost=_conv_macs, cost_kind="macs", takes_fused_activation=True,
                absorbs_channel_affine=True, scratch_bytes=_conv_scratch_bytes, window=_conv_window,
                tileable=tileable_by(_conv_window), shapes_consistent=_conv_shapes_consistent,
                equalization=_CONV_EQUALIZATION, export_kind="CONV"),

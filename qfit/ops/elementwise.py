@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from onnx import NodeProto
 
+from qfit.ops.kernels import elementwise as elementwise_kernels
 from qfit.ops.registry import Op, ShapeOf, register
 from qfit.sizes import element_count
 
@@ -36,11 +37,15 @@ _ALL = None  # quantized_inputs=None: every non-constant input is quantized
 _FOLD_ONLY = Op(output="float", quantized_inputs=(), constant_foldable=True, note="not supported in int8: kept float")
 
 register({
-    "Add": Op(quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, adds_bias=True,
+    "Add": Op(integer_kernel=elementwise_kernels.build_add,
+              quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, adds_bias=True,
               export_kind="ADD", **POINTWISE),
-    "Sub": Op(quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, **POINTWISE),
-    "Mul": Op(quantized_inputs=_ALL, constant_foldable=True, export_kind="MUL", **POINTWISE),
-    "Div": Op(quantized_inputs=(0,), constant_inputs=(1,), constant_foldable=True,
+    "Sub": Op(integer_kernel=elementwise_kernels.build_sub,
+              quantized_inputs=_ALL, takes_fused_activation=True, constant_foldable=True, **POINTWISE),
+    "Mul": Op(integer_kernel=elementwise_kernels.build_mul,
+              quantized_inputs=_ALL, constant_foldable=True, export_kind="MUL", **POINTWISE),
+    "Div": Op(integer_kernel=elementwise_kernels.build_div,
+              quantized_inputs=(0,), constant_inputs=(1,), constant_foldable=True,
               note="by a constant only (a multiply by its reciprocal); by a tensor it stays float", **POINTWISE),
     **{op_type: _FOLD_ONLY for op_type in ("Neg", "Sqrt", "Pow", "Min", "Max", "Floor", "Equal", "Not", "Where")},
 })

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
+from qfit.ops.kernels import gemm as gemm_kernels
 from qfit.ops.registry import Equalization, Op, ShapeOf, attr, register
 from qfit.sizes import element_count
 
@@ -79,11 +80,13 @@ _GEMM_EQUALIZATION = Equalization(
     rescalable=_gemm_rescalable, unpadded=lambda node: True, mean_shift=_gemm_mean_shift)
 
 register({
-    "Gemm": Op(weights={1: _gemm_axis}, bias=2, cost=_gemm_macs, cost_kind="macs", takes_fused_activation=True,
+    "Gemm": Op(integer_kernel=gemm_kernels.build_gemm,
+               weights={1: _gemm_axis}, bias=2, cost=_gemm_macs, cost_kind="macs", takes_fused_activation=True,
                bias_scale_attr="beta", product_scale_attr="alpha", absorbs_channel_affine=True,
                shapes_consistent=_gemm_shapes_consistent, equalization=_GEMM_EQUALIZATION,
                export_kind="FULLY_CONNECTED"),
-    "MatMul": Op(weights={0: _matmul_first_operand_axis, 1: _matmul_axis}, cost=_matmul_macs, cost_kind="macs",
+    "MatMul": Op(integer_kernel=gemm_kernels.build_matmul,
+                 weights={0: _matmul_first_operand_axis, 1: _matmul_axis}, cost=_matmul_macs, cost_kind="macs",
                  takes_fused_activation=True, quantized_inputs=None, bias_from_following_add=True,
                  shapes_consistent=_matmul_shapes_consistent, export_kind="FULLY_CONNECTED"),
 })

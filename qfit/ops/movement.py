@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
+from qfit.ops.kernels import movement as movement_kernels
 from qfit.ops.registry import Op, ShapeOf, attr, attr_text, register
 from qfit.sizes import element_count
 
@@ -35,18 +36,20 @@ def _tileable_channel_concat(node: NodeProto, shape_of: ShapeOf, is_constant) ->
 _VIEW = dict(output="shared", alias="view", constant_foldable=True, shapes_consistent=_same_element_count)
 
 register({
-    "Concat": Op(quantized_inputs=None, inputs_share_output=True, constant_foldable=True,
+    "Concat": Op(integer_kernel=movement_kernels.build_concat,
+                 quantized_inputs=None, inputs_share_output=True, constant_foldable=True,
                  tileable=_tileable_channel_concat, export_kind="CONCAT",
                  note="inputs stored with the output's scale (a byte copy) when only the Concat reads "
                       "them; otherwise requantized to it"),
-    "Split": Op(output="shared"),
-    "Slice": Op(output="shared", constant_foldable=True),
-    "Reshape": Op(export_kind="RESHAPE", **_VIEW),
-    "Flatten": Op(export_kind="RESHAPE", **_VIEW),
-    "Squeeze": Op(export_kind="RESHAPE", **_VIEW),
-    "Unsqueeze": Op(export_kind="RESHAPE", **_VIEW),
-    "Transpose": Op(output="shared", constant_foldable=True),
-    "Pad": Op(output="shared", note="constant pad value must be representable (0 is)"),
-    "Resize": Op(quantized_inputs=(0,), shares_when=_resize_is_nearest,
+    "Split": Op(integer_kernel=movement_kernels.build_movement, output="shared"),
+    "Slice": Op(integer_kernel=movement_kernels.build_movement, output="shared", constant_foldable=True),
+    "Reshape": Op(integer_kernel=movement_kernels.build_movement, export_kind="RESHAPE", **_VIEW),
+    "Flatten": Op(integer_kernel=movement_kernels.build_movement, export_kind="RESHAPE", **_VIEW),
+    "Squeeze": Op(integer_kernel=movement_kernels.build_movement, export_kind="RESHAPE", **_VIEW),
+    "Unsqueeze": Op(integer_kernel=movement_kernels.build_movement, export_kind="RESHAPE", **_VIEW),
+    "Transpose": Op(integer_kernel=movement_kernels.build_movement, output="shared", constant_foldable=True),
+    "Pad": Op(integer_kernel=movement_kernels.build_movement,
+              output="shared", note="constant pad value must be representable (0 is)"),
+    "Resize": Op(integer_kernel=movement_kernels.build_movement, quantized_inputs=(0,), shares_when=_resize_is_nearest,
                  note="nearest mode keeps the input's scale; linear and cubic modes requantize"),
 })

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
+from qfit.ops.kernels import pool as pool_kernels
 from qfit.ops.registry import Op, ShapeOf, attr, register
 from qfit.ops.windows import pool_window, tileable_by
 from qfit.sizes import element_count
@@ -24,11 +25,12 @@ _REDUCE = dict(cost=_reduce_ops, cost_kind="elementwise")
 
 register({
     # the maximum of int8 values is one of them: the input's scale holds
-    "MaxPool": Op(output="shared", export_kind="MAX_POOL", **_WINDOWED),
-    "AveragePool": Op(export_kind="AVERAGE_POOL", **_WINDOWED),
-    "GlobalAveragePool": Op(export_kind="GLOBAL_AVERAGE_POOL", **_REDUCE),
-    "GlobalMaxPool": Op(output="shared", export_kind="GLOBAL_MAX_POOL", **_REDUCE),
-    "ReduceMean": Op(**_REDUCE),
+    "MaxPool": Op(integer_kernel=pool_kernels.build_max_pool, output="shared", export_kind="MAX_POOL", **_WINDOWED),
+    "AveragePool": Op(integer_kernel=pool_kernels.build_average_pool, export_kind="AVERAGE_POOL", **_WINDOWED),
+    "GlobalAveragePool": Op(integer_kernel=pool_kernels.build_mean, export_kind="GLOBAL_AVERAGE_POOL", **_REDUCE),
+    "GlobalMaxPool": Op(integer_kernel=pool_kernels.build_max_pool,
+                        output="shared", export_kind="GLOBAL_MAX_POOL", **_REDUCE),
+    "ReduceMean": Op(integer_kernel=pool_kernels.build_mean, **_REDUCE),
     "ReduceProd": Op(output="float", quantized_inputs=(), constant_foldable=True,
                      note="not supported in int8: kept float"),
 })

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto, helper
 
-from qfit.ops.kernels import (FLOAT32_EXACT, INT32_LIMIT, Arithmetic, Operand, Prepared, centred_float,
+from qfit.ops.kernels.common import (FLOAT32_EXACT, INT32_LIMIT, Arithmetic, Operand, Prepared, centred_float,
                               channel_shape, requantization_record, saturate_accumulator)
 
 
@@ -94,6 +94,3 @@ def build_conv(node: NodeProto, operands: list[Operand], outputs, arithmetic: Ar
         return [requantize(acc)]
 
     return Prepared(run, requantization_record(m0, shift))
-
-
-KERNELS = {"Conv": build_conv}

@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.kernels import INT32_LIMIT, Arithmetic, Operand, Prepared, requantization_record
+from qfit.ops.kernels.common import INT32_LIMIT, Arithmetic, Operand, Prepared, requantization_record
 
 
 def _left_shift(*grids) -> int:
@@ -147,8 +147,3 @@ def build_lookup(node: NodeProto, operands: list[Operand], outputs, arithmetic: 
         return [table[values[0].astype(np.int64) - low]]
 
     return Prepared(run, {"lookup_table_entries": int(table.size)})
-
-
-KERNELS = {"Add": build_add, "Sub": build_sub, "Mul": build_mul, "Div": build_div,
-           **{op: build_lookup for op in ("Relu", "Clip", "LeakyRelu", "Sigmoid", "HardSigmoid", "HardSwish",
-                                          "Tanh")}}

@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops import attr
-from qfit.ops.kernels import (FLOAT32_EXACT, FLOAT64_EXACT, INT32_LIMIT, Arithmetic, Operand, Prepared,
+from qfit.ops.registry import attr
+from qfit.ops.kernels.common import (FLOAT32_EXACT, FLOAT64_EXACT, INT32_LIMIT, Arithmetic, Operand, Prepared,
                               requantization_record, saturate_accumulator)
 from qfit.ops.kernels.conv import integer_bias
 
@@ -125,6 +125,3 @@ def build_matmul(node: NodeProto, operands: list[Operand], outputs, arithmetic: 
     if a.kind != "activation" and b.kind != "activation":
         return None
     return _matmul(node, a, b, Operand("absent"), outputs[0], arithmetic)
-
-
-KERNELS = {"Gemm": build_gemm, "MatMul": build_matmul}

@@ -13,8 +13,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops import attr
-from qfit.ops.kernels import Arithmetic, Grid, Operand, Prepared, centred_float, requantization_record
+from qfit.ops.registry import attr
+from qfit.ops.kernels.common import Arithmetic, Grid, Operand, Prepared, centred_float, requantization_record
 
 
 def _to_grid(source: Grid, target: Grid, arithmetic: Arithmetic):
@@ -74,8 +74,3 @@ def build_concat(node: NodeProto, operands: list[Operand], outputs, arithmetic: 
     if not any(per_input):
         return Prepared(run, None)
     return Prepared(run, {"inputs": [rec or "copied" for rec in per_input]})
-
-
-KERNELS = {**{op: build_movement for op in ("Reshape", "Flatten", "Squeeze", "Unsqueeze", "Transpose", "Slice",
-                                            "Split", "Pad", "Resize")},
-           "Concat": build_concat}

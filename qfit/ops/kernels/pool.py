@@ -14,8 +14,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto, helper
 
-from qfit.ops import attr
-from qfit.ops.kernels import Arithmetic, Operand, Prepared, centred_float, requantization_record
+from qfit.ops.registry import attr
+from qfit.ops.kernels.common import Arithmetic, Operand, Prepared, centred_float, requantization_record
 from qfit.ops.kernels.movement import build_movement
 
 
@@ -115,7 +115,3 @@ def build_max_pool(node: NodeProto, operands: list[Operand], outputs, arithmetic
     if len(node.output) > 1 and node.output[1]:
         return None  # the Indices output is not an activation
     return build_movement(node, operands, outputs[:1], arithmetic)
-
-
-KERNELS = {"AveragePool": build_average_pool, "GlobalAveragePool": build_mean, "ReduceMean": build_mean,
-           "MaxPool": build_max_pool, "GlobalMaxPool": build_max_pool}
