@@ -131,104 +131,119 @@ def calibrated_ranges(plan: Plan, stats: dict[str, TensorStats], method: str,
     return ranges
 
 
-def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, float]]) -> QuantizedModel:
-    """Write the QDQ model for `plan` with activation ranges `ranges` (see the module docstring)."""
-    result = QuantizedModel(model=onnx.ModelProto())
-    params = result.activations
-    for name in plan.activations:
-        source = plan.source_of(name)
-        q = plan.activations[name]
-        lo, hi = ranges[source]
+def activation_table(plan: Plan, ranges: dict[str, tuple[float, float]]) -> dict[str, ActivationParams]:
+    """Scale and zero point of every stored activation (a shared quantizer takes its source's range)."""
+    params = {}
+    for name, q in plan.activations.items():
+        lo, hi = ranges[plan.source_of(name)]
         scale, zero_point = activation_params(lo, hi, q.bits, q.symmetric)
         params[name] = ActivationParams(scale, zero_point, q.bits, lo, hi)
+    return params
 
-    graph = loaded.graph
-    initializers: list[onnx.TensorProto] = []
-    new_nodes: list[onnx.NodeProto] = []
-    fresh = loaded.index.fresh_names()
 
-    def add_init(array: np.ndarray, base: str) -> str:
-        name = fresh(base)
-        initializers.append(numpy_helper.from_array(array, name))
+class _QdqWriter:
+    """The nodes and initializers a QDQ graph adds, in the order they are written, each freshly named."""
+
+    def __init__(self, fresh):
+        self.fresh = fresh
+        self.initializers: list[onnx.TensorProto] = []
+        self.nodes: list[onnx.NodeProto] = []
+
+    def constant(self, array: np.ndarray, base: str) -> str:
+        name = self.fresh(base)
+        self.initializers.append(numpy_helper.from_array(array, name))
         return name
 
-    def qdq_pair(tensor: str, read_name: str, out_name: str) -> None:
-        p = params[tensor]
-        dtype = INT_TYPE[p.bits][0]
-        s = add_init(np.array(p.scale, np.float32), f"{tensor}_scale")
-        z = add_init(np.array(p.zero_point, dtype), f"{tensor}_zero_point")
-        quantized = fresh(f"{tensor}_quantized")
-        new_nodes.append(helper.make_node("QuantizeLinear", [read_name, s, z], [quantized],
-                                          name=fresh(f"{tensor}_QuantizeLinear")))
-        new_nodes.append(helper.make_node("DequantizeLinear", [quantized, s, z], [out_name],
-                                          name=fresh(f"{tensor}_DequantizeLinear")))
+    def qdq_pair(self, p: ActivationParams, tensor: str, read_name: str, out_name: str) -> None:
+        s = self.constant(np.array(p.scale, np.float32), f"{tensor}_scale")
+        z = self.constant(np.array(p.zero_point, INT_TYPE[p.bits][0]), f"{tensor}_zero_point")
+        quantized = self.fresh(f"{tensor}_quantized")
+        self.nodes.append(helper.make_node("QuantizeLinear", [read_name, s, z], [quantized],
+                                           name=self.fresh(f"{tensor}_QuantizeLinear")))
+        self.nodes.append(helper.make_node("DequantizeLinear", [quantized, s, z], [out_name],
+                                           name=self.fresh(f"{tensor}_DequantizeLinear")))
 
+    def dequantized_constant(self, q: np.ndarray, scale: np.ndarray, zero: np.ndarray, base: str,
+                             axis: int | None) -> str:
+        """A stored integer constant with its scale and zero point, and the DequantizeLinear reading it."""
+        qname = self.constant(q, f"{base}_quantized")
+        sname = self.constant(scale, f"{base}_scale")
+        zname = self.constant(zero, f"{base}_zero_point")
+        dname = self.fresh(f"{base}_dequantized")
+        attrs = {"axis": axis} if axis is not None else {}
+        self.nodes.append(helper.make_node("DequantizeLinear", [qname, sname, zname], [dname],
+                                           name=self.fresh(f"{dname}_DequantizeLinear"), **attrs))
+        return dname
+
+
+def build_qdq(loaded: LoadedModel, plan: Plan, ranges: dict[str, tuple[float, float]]) -> QuantizedModel:
+    """Write the QDQ model for `plan` with activation ranges `ranges` (see the module docstring)."""
+    result = QuantizedModel(model=onnx.ModelProto(), activations=activation_table(plan, ranges))
+    writer = _QdqWriter(loaded.index.fresh_names())
     outputs = set(loaded.output_names)
     # Tensors read through their dequantized copy; a graph output keeps its name on the DQ side.
     read_as: dict[str, str] = {}
     renamed_output: dict[str, str] = {}
     for name in plan.activations:
         if name in outputs:
-            renamed_output[name] = fresh(f"{name}_float")
+            renamed_output[name] = writer.fresh(f"{name}_float")
             read_as[name] = name
         else:
-            read_as[name] = fresh(f"{name}_dequantized")
-
+            read_as[name] = writer.fresh(f"{name}_dequantized")
     result.dequantized = dict(read_as)
     for name in loaded.input_names:
         if name in plan.activations:
-            qdq_pair(name, name, read_as[name])
-
-    for node in graph.node:
-        new = onnx.NodeProto()
-        new.CopyFrom(node)
-        for i, inp in enumerate(node.input):
-            key = (node.name, i)
-            if key in plan.weights:
-                wq = plan.weights[key]
-                qw, scale = quantize_weight(loaded.constants[inp], wq.axis, wq.bits)
-                result.weight_scales[key] = scale
-                qname = add_init(qw, f"{inp}_{node.name}_quantized")
-                sname = add_init(scale, f"{inp}_{node.name}_scale")
-                zname = add_init(np.zeros(scale.shape, INT_TYPE[wq.bits][0]), f"{inp}_{node.name}_zero_point")
-                dname = fresh(f"{inp}_{node.name}_dequantized")
-                attrs = {"axis": wq.axis} if wq.axis is not None else {}
-                new_nodes.append(helper.make_node("DequantizeLinear", [qname, sname, zname], [dname],
-                                                  name=fresh(f"{dname}_DequantizeLinear"), **attrs))
-                new.input[i] = dname
-            elif key in plan.biases and (node.name, 1) in result.weight_scales:
-                source = node.input[0]
-                qb, sb = quantize_bias(loaded.constants[inp], params[source].scale,
-                                       result.weight_scales[(node.name, 1)])
-                qname = add_init(qb, f"{inp}_{node.name}_quantized")
-                sname = add_init(sb, f"{inp}_{node.name}_scale")
-                zname = add_init(np.zeros(sb.shape, np.int32), f"{inp}_{node.name}_zero_point")
-                dname = fresh(f"{inp}_{node.name}_dequantized")
-                new_nodes.append(helper.make_node("DequantizeLinear", [qname, sname, zname], [dname],
-                                                  name=fresh(f"{dname}_DequantizeLinear"), axis=0))
-                new.input[i] = dname
-            elif inp in read_as:
-                new.input[i] = read_as[inp]
+            writer.qdq_pair(result.activations[name], name, name, read_as[name])
+    for node in loaded.graph.node:
+        new = _rewired(node, loaded, plan, result, writer, read_as)
         for i, out in enumerate(node.output):
             if out in renamed_output:
                 new.output[i] = renamed_output[out]
-        new_nodes.append(new)
+        writer.nodes.append(new)
         for out in node.output:
             if out in plan.activations:
-                produced = renamed_output.get(out, out)
-                qdq_pair(out, produced, read_as[out])
+                writer.qdq_pair(result.activations[out], out, renamed_output.get(out, out), read_as[out])
+    result.model = _assemble(loaded, writer)
+    return result
 
-    referenced = {i for n in new_nodes for i in n.input}
+
+def _rewired(node: onnx.NodeProto, loaded: LoadedModel, plan: Plan, result: QuantizedModel, writer: _QdqWriter,
+             read_as: dict[str, str]) -> onnx.NodeProto:
+    """A copy of `node` reading its weights and bias as stored integers (their DequantizeLinear nodes are
+    written first) and its quantized inputs through their dequantized copies."""
+    new = onnx.NodeProto()
+    new.CopyFrom(node)
+    for i, inp in enumerate(node.input):
+        key = (node.name, i)
+        if key in plan.weights:
+            wq = plan.weights[key]
+            qw, scale = quantize_weight(loaded.constants[inp], wq.axis, wq.bits)
+            result.weight_scales[key] = scale
+            new.input[i] = writer.dequantized_constant(qw, scale, np.zeros(scale.shape, INT_TYPE[wq.bits][0]),
+                                                       f"{inp}_{node.name}", wq.axis)
+        elif key in plan.biases and (node.name, 1) in result.weight_scales:
+            qb, sb = quantize_bias(loaded.constants[inp], result.activations[node.input[0]].scale,
+                                   result.weight_scales[(node.name, 1)])
+            new.input[i] = writer.dequantized_constant(qb, sb, np.zeros(sb.shape, np.int32), f"{inp}_{node.name}", 0)
+        elif inp in read_as:
+            new.input[i] = read_as[inp]
+    return new
+
+
+def _assemble(loaded: LoadedModel, writer: _QdqWriter) -> onnx.ModelProto:
+    """The QDQ model: the float graph's initializers still read, then the written ones; the oldest
+    equivalent opset; the float model's metadata."""
+    graph = loaded.graph
+    referenced = {i for n in writer.nodes for i in n.input}
     kept_inits = [init for init in graph.initializer if init.name in referenced]
-    new_graph = helper.make_graph(new_nodes, graph.name or "qfit", list(graph.input), list(graph.output),
-                                  kept_inits + initializers)
+    new_graph = helper.make_graph(writer.nodes, graph.name or "qfit", list(graph.input), list(graph.output),
+                                  kept_inits + writer.initializers)
     opsets = qdq_opset_imports(loaded.model)
     model = helper.make_model(new_graph, opset_imports=opsets, producer_name="qfit",
                               ir_version=max(loaded.model.ir_version, helper.find_min_ir_version_for(opsets)))
     for prop in loaded.model.metadata_props:
         model.metadata_props.append(prop)
-    result.model = model
-    return result
+    return model
 
 
 # ---- the one way from precision choices to a QDQ model ---------------------------------------------

@@ -302,87 +302,120 @@ def greedy_repair(builder: Quantizer, base: PlanOptions, ranked_rows: list[dict]
     Each step screens every candidate on the at-risk samples (DropMeter.screen), then measures the
     best-scoring few on all search samples and accepts the best of those; the log holds the full
     measurements only."""
-    current = base
-    plan, quantized = builder.build(current)
-    predictions = meter.measure(quantized)
-    drop = meter.drop_pt(predictions)
-    flash, sram = counter(plan)
-    result = RepairResult(options=current, drop_before_pt=drop, drop_after_pt=drop)
-    if drop <= target_drop_pt:
+    state = _State(base, *builder.build(base))
+    state.predictions = meter.measure(state.quantized)
+    state.drop = meter.drop_pt(state.predictions)
+    state.flash, state.sram = counter(state.plan)
+    result = RepairResult(options=base, drop_before_pt=state.drop, drop_after_pt=state.drop)
+    if state.drop <= target_drop_pt:
         result.reached = True
-        result.reason = f"the int8 drop {drop:.2f} pt is already within the target {target_drop_pt:.2f} pt"
+        result.reason = f"the int8 drop {state.drop:.2f} pt is already within the target {target_drop_pt:.2f} pt"
         return result
     rows = ranked_rows[:layers_tried]
+    limits = (flash_limit_bytes, sram_limit_bytes)
     refused_best: dict | None = None
     while len(result.steps) < max_steps:
-        screen = meter.screen(predictions, screen_extra_samples)
+        screen = meter.screen(state.predictions, screen_extra_samples)
         result.screen_samples = max(result.screen_samples, int(screen.indices.size))
-        screened, refused_best = [], None
-        for row in rows:
-            for cand in candidates_for(builder.loaded, plan, row, builder.method):
-                options = cand.apply(current)
-                cand_plan, cand_q = builder.build(options)
-                estimate = meter.estimate_drop_pt(cand_q, screen, drop)
-                result.candidates_screened += 1
-                if progress is not None:
-                    progress(f"{cand.layer} {cand.describe()}: about {estimate:.2f} pt")
-                benefit = drop - estimate
-                if benefit <= BENEFIT_EPSILON_PT:
-                    continue
-                cand_flash, cand_sram = counter(cand_plan)
-                # "Breaking" a limit: ending over it, and more over it than before the step.
-                breaks = []
-                if _over(cand_flash, flash_limit_bytes) > _over(flash, flash_limit_bytes):
-                    breaks.append(("flash", cand_flash, flash_limit_bytes))
-                if _over(cand_sram, sram_limit_bytes) > _over(sram, sram_limit_bytes):
-                    breaks.append(("SRAM", cand_sram, sram_limit_bytes))
-                info = {"candidate": cand, "options": options, "plan": cand_plan, "quantized": cand_q,
-                        "drop": estimate, "flash": cand_flash, "sram": cand_sram,
-                        "flash_cost": cand_flash - flash, "sram_cost": cand_sram - sram, "breaks": breaks}
-                if breaks:
-                    if refused_best is None or estimate < refused_best["drop"]:
-                        refused_best = info
-                    continue
-                cost = max(0, info["flash_cost"]) + max(0, info["sram_cost"])
-                info["score"] = (benefit / max(cost, 1), benefit)
-                screened.append(info)
-        screened.sort(key=lambda info: info["score"], reverse=True)
-        best = None
-        for info in screened[:verified_per_step]:
-            full = meter.measure(info["quantized"])
-            result.candidates_verified += 1
-            true_drop = meter.drop_pt(full)
-            benefit = drop - true_drop
-            if benefit <= BENEFIT_EPSILON_PT:
-                continue
-            cost = max(0, info["flash_cost"]) + max(0, info["sram_cost"])
-            score = (benefit / max(cost, 1), benefit)
-            if best is None or score > best["score"]:
-                best = {**info, "drop": true_drop, "predictions": full, "score": score}
+        screened, refused_best = _screened(builder, rows, state, meter, screen, counter, limits, result, progress)
+        best = _verified_best(screened[:verified_per_step], state.drop, meter, result)
         if best is None:
-            result.reason = _no_step_reason(drop, target_drop_pt, len(rows), refused_best)
+            result.reason = _no_step_reason(state.drop, target_drop_pt, len(rows), refused_best)
             break
         cand = best["candidate"]
         result.steps.append({
             "layer": cand.layer, "action": cand.action, "tensor": cand.tensor,
-            "drop_before_pt": round(drop, 4), "drop_after_pt": round(best["drop"], 4),
+            "drop_before_pt": round(state.drop, 4), "drop_after_pt": round(best["drop"], 4),
             "flash_cost_bytes": int(best["flash_cost"]), "sram_cost_bytes": int(best["sram_cost"]),
             "flash_total_bytes": int(best["flash"]), "sram_peak_bytes": int(best["sram"])})
-        current, plan, drop, predictions = best["options"], best["plan"], best["drop"], best["predictions"]
-        flash, sram = best["flash"], best["sram"]
-        if drop <= target_drop_pt:
+        state = _State(best["options"], best["plan"], best["quantized"], best["predictions"], best["drop"],
+                       best["flash"], best["sram"])
+        if state.drop <= target_drop_pt:
             result.reached = True
-            result.reason = (f"drop {drop:.2f} pt is within the target {target_drop_pt:.2f} pt after "
+            result.reason = (f"drop {state.drop:.2f} pt is within the target {target_drop_pt:.2f} pt after "
                              f"{len(result.steps)} step{'s' if len(result.steps) != 1 else ''}")
             break
     else:
-        result.reason = (f"stopped at the limit of {max_steps} steps with the drop at {drop:.2f} pt "
+        result.reason = (f"stopped at the limit of {max_steps} steps with the drop at {state.drop:.2f} pt "
                          f"(target {target_drop_pt:.2f} pt)")
     if refused_best is not None and not result.reached:
         result.refused.append(_refused_entry(refused_best))
-    result.options = current
-    result.drop_after_pt = drop
+    result.options = state.options
+    result.drop_after_pt = state.drop
     return result
+
+
+@dataclass
+class _State:
+    """The choices accepted so far and their figures."""
+
+    options: PlanOptions
+    plan: Plan
+    quantized: QuantizedModel
+    predictions: Predictions | None = None
+    drop: float = 0.0
+    flash: int = 0
+    sram: int = 0
+
+
+def _screened(builder: Quantizer, rows: list[dict], state: _State, meter: DropMeter, screen: "Screen",
+              counter: ByteCounter, limits: tuple[int | None, int | None], result: RepairResult,
+              progress: Callable[[str], None] | None) -> tuple[list[dict], dict | None]:
+    """Every candidate on top of `state`, estimated on the screened samples: those that lower the drop
+    within the limits, best score first, and the best one refused for breaking a limit."""
+    flash_limit, sram_limit = limits
+    screened, refused_best = [], None
+    for row in rows:
+        for cand in candidates_for(builder.loaded, state.plan, row, builder.method):
+            options = cand.apply(state.options)
+            cand_plan, cand_q = builder.build(options)
+            estimate = meter.estimate_drop_pt(cand_q, screen, state.drop)
+            result.candidates_screened += 1
+            if progress is not None:
+                progress(f"{cand.layer} {cand.describe()}: about {estimate:.2f} pt")
+            benefit = state.drop - estimate
+            if benefit <= BENEFIT_EPSILON_PT:
+                continue
+            cand_flash, cand_sram = counter(cand_plan)
+            # "Breaking" a limit: ending over it, and more over it than before the step.
+            breaks = []
+            if _over(cand_flash, flash_limit) > _over(state.flash, flash_limit):
+                breaks.append(("flash", cand_flash, flash_limit))
+            if _over(cand_sram, sram_limit) > _over(state.sram, sram_limit):
+                breaks.append(("SRAM", cand_sram, sram_limit))
+            info = {"candidate": cand, "options": options, "plan": cand_plan, "quantized": cand_q,
+                    "drop": estimate, "flash": cand_flash, "sram": cand_sram,
+                    "flash_cost": cand_flash - state.flash, "sram_cost": cand_sram - state.sram, "breaks": breaks}
+            if breaks:
+                if refused_best is None or estimate < refused_best["drop"]:
+                    refused_best = info
+                continue
+            info["score"] = _score(benefit, info)
+            screened.append(info)
+    screened.sort(key=lambda info: info["score"], reverse=True)
+    return screened, refused_best
+
+
+def _score(benefit: float, info: dict) -> tuple[float, float]:
+    """Drop removed per byte added (flash + SRAM), then the drop removed."""
+    cost = max(0, info["flash_cost"]) + max(0, info["sram_cost"])
+    return benefit / max(cost, 1), benefit
+
+
+def _verified_best(shortlist: list[dict], drop: float, meter: DropMeter, result: RepairResult) -> dict | None:
+    """The shortlisted candidates measured on every search sample: the best that lowers the drop."""
+    best = None
+    for info in shortlist:
+        full = meter.measure(info["quantized"])
+        result.candidates_verified += 1
+        true_drop = meter.drop_pt(full)
+        benefit = drop - true_drop
+        if benefit <= BENEFIT_EPSILON_PT:
+            continue
+        score = _score(benefit, info)
+        if best is None or score > best["score"]:
+            best = {**info, "drop": true_drop, "predictions": full, "score": score}
+    return best
 
 
 def _refused_entry(info: dict) -> dict:
