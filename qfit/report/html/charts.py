@@ -31,6 +31,7 @@ def gauge(f: Figures, used_path: str, limit_path: str, label: str) -> str:
 
 
 def sram_chart(f: Figures) -> str:
+    # Over 60 lines: one chart drawn top to bottom (bars, limit lines, labels, ticks) on shared coordinates.
     timeline = f.get("sram.timeline") or []
     if not timeline:
         return '<p>No execution steps.</p>'
@@ -153,6 +154,7 @@ def _db_range(values: list[float]) -> tuple[float, float, float]:
 
 
 def error_chart(f: Figures, marked: list[int]) -> str:
+    # Over 60 lines: one chart drawn top to bottom (grid, marks, lines, points, ticks) on shared coordinates.
     layers = f.get("layers")
     acc = [(i, row["sqnr_db"]) for i, row in enumerate(layers) if row.get("sqnr_db") is not None]
     iso = [(i, row["sqnr_isolated_db"]) for i, row in enumerate(layers) if row.get("sqnr_isolated_db") is not None]
