@@ -394,8 +394,8 @@ def analysis_stage(options: CheckOptions, planned: Planned, quantized: Quantized
     layer_keys = {}
     for row in evaluation.layers:
         keys = {}
-        for key in (section["isolated_key"], section["float_key"], "sqnr_isolated_db", "cosine_isolated",
-                    "isolated_output_sqnr_db", "sensitivity_rank"):
+        for key in (section["isolated_key"], section["float_key"], *section.get("row_keys", (
+                "sqnr_isolated_db", "cosine_isolated", "isolated_output_sqnr_db", "sensitivity_rank"))):
             if key:
                 keys[key] = rows.get(row["name"], {}).get(key)
         keys["fallback_cost_bytes"] = costs.get(row["name"])

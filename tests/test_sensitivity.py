@@ -1,6 +1,11 @@
 """Per-layer sensitivity and end metrics, checked against definitions and independent computations."""
 from __future__ import annotations
 
+import copy
+import math
+import os
+from fractions import Fraction
+
 import numpy as np
 import onnxruntime as ort
 import pytest
@@ -8,7 +13,9 @@ from onnx import TensorProto, helper, numpy_helper
 
 from digits_folders import HEAVY_LAYER, INPUT_SHAPES, MODEL, digits_split, with_weight_outlier, write_folders
 from qfit import check as pipeline
-from qfit.measure.evaluate import compared_layers
+from qfit.data import load_preprocess
+from qfit.measure.evaluate import compared_layers, sample_of
+from qfit.report.document import ranking_tables
 from through_qfit import check_with_report
 from qfit.measure import sensitivity
 from qfit.measure.compare import ErrorSums
@@ -89,6 +96,10 @@ def test_a_layer_given_one_large_weight_outlier_ranks_first(folders, tmp_path, p
     others = [r["isolated_output_sqnr_db"] for r in result.report["layers"]
               if r["name"] != HEAVY_LAYER and r["isolated_output_sqnr_db"] is not None]
     assert row["isolated_output_sqnr_db"] < min(others)
+    # and keeping it float recovers the most output SQNR, well beyond its standard error
+    recoveries = {r["name"]: r["float_recovery_db"] for r in result.report["layers"] if r["float_recovery_db"] is not None}
+    assert max(recoveries, key=recoveries.get) == HEAVY_LAYER
+    assert row["float_recovery_db"] > 4 * row["float_recovery_se_db"] > 0
     assert section["samples_used"] == 64 and section["samples_available"] == 540
 
 
@@ -147,23 +158,163 @@ class _Samples:
             yield Batch({self.name: chunk}, None, [str(j) for j in range(i, i + len(chunk))])
 
 
+def _switch_model_run(switch, x, on):
+    """The switch model itself (its definition: Where after every quantizer), switches fed as inputs."""
+    so = ort.SessionOptions()
+    so.add_session_config_entry("session.disable_quant_qdq", "1")
+    session = ort.InferenceSession(switch.model.SerializeToString(), so, providers=["CPUExecutionProvider"])
+    feeds = {"x": x, **{s: np.array(s in on) for s in switch.switches}}
+    return session.run(["y"], feeds)[0]
+
+
 def test_switch_model_with_every_switch_on_is_the_int8_model_and_off_the_float_model():
     rng = np.random.default_rng(1)
     xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(6)]
     loaded, plan, quantized = _quantized(_conv_chain(), xs)
     layers = compared_layers(loaded, plan)
     switch = sensitivity.build_switch_model(loaded, plan, quantized, layers)
-    runner = sensitivity.SwitchRunner(switch, ["y"], batch_size=1)
     so = ort.SessionOptions()
     so.add_session_config_entry("session.disable_quant_qdq", "1")
     int8 = ort.InferenceSession(quantized.model.SerializeToString(), so, providers=["CPUExecutionProvider"])
     float_session = ort.InferenceSession(loaded.model.SerializeToString(), providers=["CPUExecutionProvider"])
     for x in xs:
-        assert np.array_equal(runner({"x": x}, set(switch.switches))["y"], int8.run(["y"], {"x": x})[0])
-        np.testing.assert_allclose(runner({"x": x}, set())["y"], float_session.run(["y"], {"x": x})[0],
+        assert np.array_equal(_switch_model_run(switch, x, set(switch.switches)), int8.run(["y"], {"x": x})[0])
+        np.testing.assert_allclose(_switch_model_run(switch, x, set()), float_session.run(["y"], {"x": x})[0],
                                    rtol=1e-5, atol=1e-5)
     # conv1 owns the input quantizer, its weights and its (ReLU-fused) output quantizer
     assert len(switch.layer_switches["conv1"]) == 3 and len(switch.layer_switches["conv2"]) == 2
+
+
+def test_sweep_model_computes_each_configuration_as_the_switch_model_defines_it():
+    # The sweep model runs each configuration as a plain model cut at the layer's first quantizer;
+    # the switch model with the same switches fed is the definition it must reproduce.
+    rng = np.random.default_rng(4)
+    xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(4)]
+    loaded, plan, quantized = _quantized(_conv_chain(), xs)
+    layers = compared_layers(loaded, plan)
+    switch = sensitivity.build_switch_model(loaded, plan, quantized, layers)
+    rows = [r for r in layers if switch.layer_switches.get(r["name"])]
+    parts, wanted = sensitivity.sweep_parts(switch, rows, "y")
+    model, names = sensitivity.sweep_graph(switch, parts, wanted, {})
+    where = dict(zip(wanted, names))
+    runner = Runner(model, sorted(set(names)), faithful=True, batch_size=1)
+    cuts = sensitivity.find_cuts(switch, [r["name"] for r in rows])
+    assert cuts.start_of["conv1"] == 0 < cuts.start_of["conv2"]   # conv2 runs from its own quantizers on
+    everything = set(switch.switches)
+    for x in xs:
+        got = runner({"x": x})
+        assert np.array_equal(got[where[("int8", "y")]], _switch_model_run(switch, x, everything))
+        for k, row in enumerate(rows):
+            mine = set(switch.layer_switches[row["name"]])
+            np.testing.assert_allclose(got[where[(f"alone{k}", "y")]], _switch_model_run(switch, x, mine),
+                                       rtol=1e-5, atol=1e-6)
+            np.testing.assert_allclose(got[where[(f"kept{k}", "y")]], _switch_model_run(switch, x, everything - mine),
+                                       rtol=1e-5, atol=1e-6)
+
+
+def _exact_two_sided_sign_test(worse: int, better: int) -> Fraction:
+    """p-value of the exact sign test, from binomial coefficients in exact arithmetic (McNemar 1947,
+    exact form: under no effect each discordant sample goes either way with probability 1/2)."""
+    n, k = worse + better, max(worse, better)
+    return min(Fraction(1), 2 * Fraction(sum(math.comb(n, i) for i in range(k, n + 1)), 2 ** n))
+
+
+@pytest.mark.parametrize("worse,better", [(6, 0), (5, 0), (10, 2), (9, 3), (0, 7), (1, 1), (0, 0), (20, 9)])
+def test_points_count_as_resolved_exactly_when_the_sign_test_rejects_at_5_percent(worse, better):
+    expected = worse + better > 0 and _exact_two_sided_sign_test(worse, better) < Fraction(1, 20)
+    assert sensitivity.flips_resolved(worse, better) == expected
+    if (worse, better) == (6, 0):   # hand value: 2 / 2**6 = 0.03125 < 0.05; five alone give 0.0625
+        assert expected and not sensitivity.flips_resolved(5, 0)
+
+
+def test_a_points_column_appears_only_where_some_layer_resolves_it_and_then_holds_the_exact_drop():
+    # Hand-made outputs of 16 labelled samples, float always right: layer "a" alone flips 8 of them
+    # (8 discordant, all one way: p = 2 / 2**8, resolved), layer "b" flips 1 (not resolved).
+    labels = np.arange(16) % 4
+    float_out = np.eye(4)[labels] * 5.0
+    flipped = float_out.copy()
+    flipped[:8] = np.eye(4)[(labels[:8] + 1) % 4] * 5.0
+    one = float_out.copy()
+    one[0] = np.eye(4)[1] * 5.0
+    layers = [{"name": "a"}, {"name": "b"}]
+    rows, summary = sensitivity.figures_of(layers, float_out, float_out, {"a": flipped, "b": one},
+                                           {"a": float_out, "b": float_out}, {"a": ErrorSums(), "b": ErrorSums()},
+                                           labels, "classification")
+    assert summary["points_shown"] == {"isolated": True, "float": False}
+    assert summary["isolated_key"] == "sensitivity_pt" and summary["float_key"] is None
+    assert rows["a"]["sensitivity_pt"] == 50.0 and rows["b"]["sensitivity_pt"] == 100 / 16
+    assert rows["a"]["float_recovery_pt"] is None
+    assert summary["ranking"] == ["a", "b"]   # more damage to the output first
+    # without any resolved layer, no points column at all
+    _, summary = sensitivity.figures_of(layers[1:], float_out, float_out, {"b": one}, {"b": float_out},
+                                        {"b": ErrorSums()}, labels, "classification")
+    assert summary["isolated_key"] is None and summary["points_shown"] == {"isolated": False, "float": False}
+
+
+# ---- the demo: the ranking informs (issue 15) ----------------------------------------------------
+
+DEMO = os.path.join(os.path.dirname(os.path.dirname(os.path.abspath(__file__))), "calib_demo")
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    """The demo checked once with the default sweep (the README's command, as a library call)."""
+    options = pipeline.CheckOptions(model_path=os.path.join(DEMO, "model.onnx"), calib_dir=os.path.join(DEMO, "calib"),
+                                    eval_dir=os.path.join(DEMO, "eval"), out_dir=str(tmp_path_factory.mktemp("demo")),
+                                    flash_limit_bytes=1 << 20, sram_limit_bytes=256 << 10,
+                                    preprocess=load_preprocess(os.path.join(DEMO, "preprocess.json")), progress=False)
+    return check_with_report(options)
+
+
+def _half(data, parity: int):
+    """Every other file of the folder (files are sorted by class, so both halves hold every class)."""
+    half = copy.copy(data)
+    half.files = data.files[parity::2]
+    half.labels = None if data.labels is None else data.labels[parity::2]
+    return half
+
+
+def _spearman(first: list[str], second: list[str]) -> float:
+    """Spearman's rank correlation from its definition for rankings without ties (Spearman 1904):
+    1 - 6 sum(d^2) / (n (n^2 - 1)), d = difference of a layer's two positions."""
+    position = {name: i for i, name in enumerate(second)}
+    n = len(first)
+    d2 = sum((i - position[name]) ** 2 for i, name in enumerate(first))
+    return 1 - 6 * d2 / (n * (n * n - 1))
+
+
+def test_demo_ranking_agrees_between_the_two_halves_of_the_evaluation_folder(demo):
+    # Issue 15's target: rank correlation >= 0.9 between disjoint halves, at the default sample count.
+    final = demo.result.final
+    quantized, data = final.quantized, final.evaluation.data
+    rankings = []
+    for parity in (0, 1):
+        sample = sample_of(_half(data, parity), sensitivity.DEFAULT_SAMPLE_CAP, 0)
+        swept = sensitivity.sweep(quantized.reference, quantized.plan, quantized.model, final.evaluation.layers,
+                                  sample, 16, "classification")
+        assert swept["samples_used"] == sensitivity.DEFAULT_SAMPLE_CAP
+        rankings.append(swept["ranking"])
+    assert set(rankings[0]) == set(rankings[1]) and len(rankings[0]) >= 30
+    assert not set(_half(data, 0).files) & set(_half(data, 1).files)
+    assert _spearman(*rankings) >= 0.9
+
+
+def test_demo_report_states_the_sample_count_and_no_printed_sensitivity_column_is_constant(demo):
+    section = demo.report["sensitivity"]
+    assert section["samples_used"] == section["sample_cap"] == sensitivity.DEFAULT_SAMPLE_CAP
+    assert "sign test" in section["points_note"] and section["ranked_by"].startswith(sensitivity.RANK_KEY)
+    effects, _ = ranking_tables(demo.report, None)
+    assert len(effects.rows) == section["layers_swept"]
+    for column, header in enumerate(effects.headers[2:], 2):   # after "#" and "layer"
+        values = {row[column] for row in effects.rows}
+        assert len(values) > 1, f"column {header!r} is constant: {values}"
+    # a points column appears only where the samples resolve it; on the demo none does
+    assert not any("drop" in header for header in effects.headers) or any(section["points_shown"].values())
+    rows = [r for r in demo.report["layers"] if r.get("sensitivity_rank") is not None]
+    # every figure carries its standard error (zero only where every sample gives the same value, as
+    # for a Flatten whose quantizer repeats its input's: keeping it float changes nothing)
+    assert all(r["isolated_output_sample_sqnr_se_db"] > 0 and r["float_recovery_se_db"] >= 0 for r in rows)
+    assert sum(r["float_recovery_se_db"] > 0 for r in rows) >= len(rows) - 2
 
 
 def test_isolated_error_equals_accumulated_error_for_the_first_layer():

@@ -25,17 +25,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 from onnx import TensorProto, helper, numpy_helper
 
-from qfit.measure.compare import SQNR_CAP_DB, ErrorSums, binomial_test_above, round_db, sqnr_from_sums
 from qfit.graph.load import LoadedModel
+from qfit.graph.model import GraphIndex
+from qfit.measure.compare import ErrorSums, binomial_test_above, round_db, sqnr_from_sums
 from qfit.ops import QDQ_OPS
 from qfit.quant.plan import Plan
 from qfit.quant.quantize import QuantizedModel
-from qfit.runtime.sessions import Runner, batch_free, session_options
+from qfit.runtime.sessions import Runner
 
-DEFAULT_SAMPLE_CAP = 64
+DEFAULT_SAMPLE_CAP = 32
 SWITCH_PREFIX = "qfit_switch_"
 
 
@@ -56,16 +56,9 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     switched off is exactly the float layer even when its int8 bias was corrected.
     """
     qgraph = quantized.model.graph
-    producer = {o: n for n in qgraph.node for o in n.output}
-    taken = ({o for n in qgraph.node for o in n.output} | {i.name for i in qgraph.initializer}
-             | {i.name for i in qgraph.input})
-
-    def fresh(base: str) -> str:
-        name, i = base, 1
-        while name in taken:
-            name, i = f"{base}_{i}", i + 1
-        taken.add(name)
-        return name
+    qindex = GraphIndex(qgraph)
+    producer = qindex.producer
+    fresh = qindex.fresh_names()
 
     result = SwitchModel(model=onnx.ModelProto())
     wheres_after: dict[str, onnx.NodeProto] = {}   # dequantized activation name -> Where emitted after its DQ
@@ -73,10 +66,10 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     activation_switch: dict[str, str] = {}
     for tensor in plan.activations:
         deq = quantized.dequantized.get(tensor)
-        dq = producer.get(deq)
+        dq = producer(deq)
         if dq is None or dq.op_type != "DequantizeLinear":
             continue
-        q = producer.get(dq.input[0])
+        q = producer(dq.input[0])
         if q is None or q.op_type != "QuantizeLinear":
             continue
         switch = fresh(f"{SWITCH_PREFIX}{len(result.switches)}")
@@ -105,7 +98,7 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
                 key = (node.name, i)
                 if key not in plan.weights and key not in plan.biases:
                     continue
-                made = producer.get(name)
+                made = producer(name)
                 if made is None or made.op_type != "DequantizeLinear":
                     continue
                 if node.name not in weight_switch:
@@ -155,36 +148,24 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     return result
 
 
-class SwitchRunner:
-    """One faithful (QDQ fusion off) session over a switch model; each call names the switches on."""
-
-    def __init__(self, switch: SwitchModel, outputs: list[str], batch_size: int = 16, threads: int = 0):
-        self.switches = list(switch.switches)
-        self.outputs = list(outputs)
-        self.runner = Runner(switch.model, self.outputs, faithful=True, batch_size=batch_size, threads=threads,
-                             unbatched=self.switches)
-
-    def __call__(self, inputs: dict[str, np.ndarray], on: set[str]) -> dict[str, np.ndarray]:
-        return self.runner(inputs, {s: np.array(s in on) for s in self.switches})
-
-
-# ---- configurations as plain models: a switch model with its switches fixed, cut at a layer ----------
+# ---- configurations as plain models, cut where a layer's quantizers begin --------------------------
 #
-# Running every configuration through the switch model costs about nine float passes each on the
-# demo: every Q/DQ pair runs whether switched on or not, and weights read through Where are not
-# constants, so onnxruntime can neither pre-pack them nor keep its blocked convolution layout. A
-# configuration with its switches fixed is a plain model instead (each Where becomes an Identity of
-# the chosen value; unused Q/DQ nodes are pruned), and it only needs to run from the first node its
-# own switches touch: everything before is the float model's (only this layer int8) or the int8
-# model's (only this layer float) and is fed from those two passes, which advance from layer to layer
-# alongside the sweep.
+# Running a configuration through the switch model itself costs about nine float passes on the demo:
+# every Q/DQ pair runs whether switched on or not, and weights read through Where are no constants,
+# so onnxruntime can neither pre-pack them nor keep its blocked convolution layout. So each
+# configuration is run as a plain model with its switches fixed (each Where becomes an Identity of
+# the chosen value; Q/DQ nodes nobody reads are pruned), and only from the first node its layer's
+# quantizers touch (its *start*): everything before is the float model's (only this layer int8) or
+# the int8 model's (only this layer float), so it reads those tensors from the float and the int8
+# model computed alongside. All of it is one *sweep model* (each part's names prefixed), one
+# onnxruntime session, one run per batch: memory is one batch's.
 
 def _fixed_nodes(switch: SwitchModel, on: set[str]) -> list[onnx.NodeProto]:
     """The switch model's nodes with every switch fixed: Where(s, quantized, float) -> Identity."""
     switches = set(switch.switches)
     nodes = []
     for node in switch.model.graph.node:
-        if node.input and node.input[0] in switches:   # only the switch Where nodes read a switch
+        if node.op_type == "Where" and node.input[0] in switches:
             chosen = node.input[1] if node.input[0] in on else node.input[2]
             nodes.append(helper.make_node("Identity", [chosen], [node.output[0]], name=node.name))
         else:
@@ -192,44 +173,78 @@ def _fixed_nodes(switch: SwitchModel, on: set[str]) -> list[onnx.NodeProto]:
     return nodes
 
 
-def _cut_model(switch: SwitchModel, nodes: list[onnx.NodeProto], fed: dict[str, np.ndarray],
-               outputs: list[str]) -> onnx.ModelProto:
-    """The part of `nodes` that computes `outputs` from the tensors in `fed` (arrays whose dtype and
-    per-sample shape the inputs take) and the initializers."""
+def _needed_nodes(nodes: list[onnx.NodeProto], fed: set[str], outputs: list[str]) -> list[onnx.NodeProto]:
+    """The nodes that compute `outputs` from the tensors in `fed` and the initializers, in order."""
     producer = {o: i for i, n in enumerate(nodes) for o in n.output if o}
-    keep, seen, stack = set(), set(), list(outputs)
+    keep, stack = set(), [o for o in outputs if o not in fed]
     while stack:
-        name = stack.pop()
-        if name in seen or name in fed or name not in producer:
+        index = producer.get(stack.pop())
+        if index is None or index in keep:
             continue
-        seen.add(name)
-        index = producer[name]
-        if index not in keep:
-            keep.add(index)
-            stack.extend(x for x in nodes[index].input if x)
-    kept = [nodes[i] for i in sorted(keep)]
-    used = {x for n in kept for x in n.input}
+        keep.add(index)
+        stack.extend(x for x in nodes[index].input if x and x not in fed)
+    return [nodes[i] for i in sorted(keep)]
+
+
+@dataclass
+class Part:
+    """One configuration inside the sweep model; the tensors it computes get the prefix `tag/`."""
+
+    tag: str
+    nodes: list[onnx.NodeProto]   # its switch-model nodes, switches fixed, pruned to what it needs
+    source: str | None            # tag of the part whose tensors it reads at its start (None: graph inputs)
+    reads: set[str]               # the switch-model names it reads from there
+
+
+def sweep_graph(switch: SwitchModel, parts: list[Part], wanted: list[tuple[str, str]],
+                elem_types: dict[str, int]) -> tuple[onnx.ModelProto, list[str]]:
+    """One model computing every part side by side, and the graph output name of each (tag, name) in
+    `wanted` (a name a part reads rather than computes is its source's). `elem_types`: ONNX element
+    types of the switch-model tensors that are not float."""
     graph = switch.model.graph
-    inputs = [helper.make_tensor_value_info(name, helper.np_dtype_to_tensor_dtype(value.dtype),
-                                            ["batch", *value.shape[1:]])
-              for name, value in fed.items() if name in used]
-    results = [helper.make_tensor_value_info(name, TensorProto.FLOAT, None) for name in outputs]
-    initializers = [t for t in graph.initializer if t.name in used]
-    return helper.make_model(helper.make_graph(kept, "qfit_configuration", inputs, results, initializers),
-                             opset_imports=list(switch.model.opset_import), ir_version=switch.model.ir_version)
+    made = {part.tag: {o for n in part.nodes for o in n.output if o} for part in parts}
+    by_tag = {part.tag: part for part in parts}
+
+    def name_in(tag: str | None, name: str) -> str:
+        """The sweep-model name of switch-model tensor `name` as part `tag` sees it."""
+        if tag is None or not name:
+            return name
+        if name in made[tag]:
+            return f"{tag}/{name}"
+        part = by_tag[tag]
+        return name_in(part.source, name) if name in part.reads else name   # else an initializer
+
+    nodes = []
+    for part in parts:
+        for node in part.nodes:
+            copy = helper.make_node(node.op_type, [name_in(part.tag, x) for x in node.input],
+                                    [f"{part.tag}/{o}" if o else "" for o in node.output],
+                                    name=f"{part.tag}/{node.name}", domain=node.domain or None)
+            copy.attribute.extend(node.attribute)
+            nodes.append(copy)
+    used = {x for n in nodes for x in n.input}
+    outputs = [name_in(tag, name) for tag, name in wanted]
+    results = [helper.make_tensor_value_info(out, elem_types.get(name, TensorProto.FLOAT), None)
+               for out, (_, name) in dict(zip(outputs, wanted)).items()]
+    inputs = [i for i in graph.input if i.name not in set(switch.switches) and i.name in used]
+    model = helper.make_model(helper.make_graph(nodes, "qfit_sensitivity", inputs, results,
+                                                [t for t in graph.initializer if t.name in used]),
+                              opset_imports=list(switch.model.opset_import), ir_version=switch.model.ir_version)
+    return model, outputs
 
 
 @dataclass
 class Cuts:
     """Where each layer's configurations start, and which tensors cross each start."""
 
-    start_of: dict[str, int]               # layer row -> index of the first node its switches touch
-    live: dict[int, list[str]]             # start index -> data tensors made before it and read from it on
+    start_of: dict[str, int]               # layer row -> index of the first switch-model node it touches
+    live: dict[int, list[str]]             # start -> data tensors made before it and read at or after it
 
 
 def find_cuts(switch: SwitchModel, rows: list[str]) -> Cuts:
-    """A layer's start is its first Where, or the Q/DQ pair feeding it, or the first node reading a
-    switched weight. Everything before the start is untouched by the layer's switches."""
+    """A layer starts at the Q/DQ pair of its first activation switch, or at the first node reading a
+    switched weight; nothing before its start depends on its switches. The switch model's node
+    order is topological (built from the QDQ model's)."""
     graph = switch.model.graph
     nodes = list(graph.node)
     index_of = {o: i for i, n in enumerate(nodes) for o in n.output if o}
@@ -237,63 +252,31 @@ def find_cuts(switch: SwitchModel, rows: list[str]) -> Cuts:
     for node in nodes:
         if all((not x) or x in constant for x in node.input):
             constant.update(o for o in node.output if o)
-    where_of = {}  # switch -> indices of the nodes that start its effect
-    for i, node in enumerate(nodes):
-        if not node.input or node.input[0] not in switch.switches:   # the switch Where nodes
-            continue
-        if node.output[0] in constant:   # a weight switch: it starts at the nodes reading the weight
-            starts = [j for j, n in enumerate(nodes) if node.output[0] in n.input]
-        else:  # an activation switch: it starts at its own Q/DQ pair
-            starts = [i]
-            dq = index_of.get(node.input[1])
-            if dq is not None:
-                starts.append(dq)
-                q = index_of.get(nodes[dq].input[0])
-                if q is not None and nodes[q].op_type == "QuantizeLinear":
-                    starts.append(q)
-        where_of.setdefault(node.input[0], []).extend(starts)
-    start_of = {row: min(i for s in switch.layer_switches[row] for i in where_of[s]) for row in rows}
-    last_read: dict[str, int] = {o.name: len(nodes) for o in graph.output}
+    readers: dict[str, list[int]] = {}
     for i, node in enumerate(nodes):
         for x in node.input:
-            if x and x not in constant:
-                last_read[x] = max(last_read.get(x, -1), i)
-    made_at = {name: -1 for name in (i.name for i in graph.input) if name not in constant}
+            readers.setdefault(x, []).append(i)
+    first_touch = {}
+    for i, node in enumerate(nodes):
+        if node.op_type != "Where" or node.input[0] not in switch.switches:
+            continue
+        if node.output[0] in constant:   # a weight switch: its effect starts at the nodes reading the weight
+            touched = readers.get(node.output[0], [i])
+        else:                            # an activation switch: at its own Q/DQ pair
+            touched = [i] + [index_of[x] for x in (node.input[1],) if x in index_of]
+            touched += [index_of[x] for x in nodes[touched[-1]].input[:1] if x in index_of
+                        and nodes[index_of[x]].op_type == "QuantizeLinear"]
+        first_touch[node.input[0]] = min(touched)
+    start_of = {row: min(first_touch[s] for s in switch.layer_switches[row]) for row in rows}
+    last_read = {o.name: len(nodes) for o in graph.output}
+    for name, where in readers.items():
+        if name not in constant:
+            last_read[name] = max(last_read.get(name, -1), max(where))
+    made_at = {i.name: -1 for i in graph.input if i.name not in constant}
     made_at.update({o: i for o, i in index_of.items() if o not in constant})
-    live = {start: sorted(t for t, made in made_at.items() if made < start and last_read.get(t, -1) >= start)
-            for start in set(start_of.values())}
+    live = {start: sorted(t for t, made in made_at.items() if made < start <= last_read.get(t, -1))
+            for start in set(start_of.values()) | {0}}
     return Cuts(start_of, live)
-
-
-class CutRunner:
-    """Runs one cut model over arrays of many samples, in batches when the model allows it."""
-
-    def __init__(self, model: onnx.ModelProto, batch_size: int, batched: bool, threads: int = 0):
-        self.outputs = [o.name for o in model.graph.output]
-        self.inputs = [i.name for i in model.graph.input]
-        self.batch_size = batch_size if batched else 1
-        serial = (batch_free(model) if batched else _batch_one(model)).SerializeToString()
-        self.session = ort.InferenceSession(serial, session_options(True, threads),
-                                            providers=["CPUExecutionProvider"])
-
-    def __call__(self, values: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-        count = len(next(iter(values.values())))
-        parts = []
-        for begin in range(0, count, self.batch_size):
-            feeds = {name: values[name][begin:begin + self.batch_size] for name in self.inputs}
-            parts.append(self.session.run(self.outputs, feeds))
-        return {name: np.concatenate([p[k] for p in parts]) for k, name in enumerate(self.outputs)}
-
-
-def _batch_one(model: onnx.ModelProto) -> onnx.ModelProto:
-    copy = onnx.ModelProto()
-    copy.CopyFrom(model)
-    for vi in copy.graph.input:
-        dims = vi.type.tensor_type.shape.dim
-        if len(dims):
-            dims[0].ClearField("dim_param")
-            dims[0].dim_value = 1
-    return copy
 
 
 # ---- per-sample figures of one configuration against the float model ---------------------------
@@ -303,6 +286,7 @@ class OutputFigures:
     """Per-sample figures of one configuration's model output against the float output."""
 
     noise: np.ndarray                 # sum of squared differences, per sample
+    sqnr_db: np.ndarray               # per-sample output SQNR, dB (capped as compare caps it)
     kl_nats: np.ndarray | None        # KL(float softmax || this softmax), per sample (classes only)
     predicted: np.ndarray | None      # argmax, per sample (classes only)
 
@@ -311,41 +295,22 @@ def output_figures(float_out: np.ndarray, out: np.ndarray, classification: bool)
     n = float_out.shape[0]
     f, q = float_out.reshape(n, -1).astype(np.float64), out.reshape(n, -1).astype(np.float64)
     noise = np.sum((f - q) ** 2, axis=1)
+    signal = np.sum(f ** 2, axis=1)
+    sqnr = np.array([sqnr_from_sums(s, e) for s, e in zip(signal, noise)])
     if not classification:
-        return OutputFigures(noise, None, None)
+        return OutputFigures(noise, sqnr, None, None)
     log_p = f - f.max(axis=1, keepdims=True)
     log_p -= np.log(np.exp(log_p).sum(axis=1, keepdims=True))
     log_q = q - q.max(axis=1, keepdims=True)
     log_q -= np.log(np.exp(log_q).sum(axis=1, keepdims=True))
     kl = np.sum(np.exp(log_p) * (log_p - log_q), axis=1)
-    return OutputFigures(noise, np.maximum(kl, 0.0), np.argmax(q, axis=1))
+    return OutputFigures(noise, sqnr, np.maximum(kl, 0.0), np.argmax(q, axis=1))
 
 
-# ---- uncertainty: a bootstrap over samples ---------------------------------------------------------
-
-BOOTSTRAP_RESAMPLES = 1000
-
-
-def bootstrap_weights(samples: int, seed: int = 0) -> np.ndarray:
-    """(resamples, samples) counts: how often each sample is drawn in each bootstrap resample
-    (Efron & Tibshirani, An Introduction to the Bootstrap, 1993: resample the samples with
-    replacement, recompute the figure, read its spread)."""
-    rng = np.random.default_rng(seed)
-    draws = rng.integers(0, samples, size=(BOOTSTRAP_RESAMPLES, samples))
-    weights = np.zeros((BOOTSTRAP_RESAMPLES, samples))
-    np.add.at(weights, (np.repeat(np.arange(BOOTSTRAP_RESAMPLES), samples), draws.ravel()), 1.0)
-    return weights
-
-
-def sqnr_db_of(signal: np.ndarray, noise: np.ndarray) -> np.ndarray:
-    """10 log10(signal / noise) elementwise, +inf for zero noise (capped for arithmetic)."""
-    with np.errstate(divide="ignore"):
-        return 10.0 * np.log10(np.maximum(signal, 1e-300) / np.maximum(noise, 1e-300))
-
-
-def _interval(replicates: np.ndarray) -> tuple[float, list[float]]:
-    """Standard error and 95 % percentile interval of bootstrap replicates."""
-    return float(np.std(replicates)), [float(np.percentile(replicates, 2.5)), float(np.percentile(replicates, 97.5))]
+def mean_and_se(values: np.ndarray) -> tuple[float, float | None]:
+    """Mean over samples and its standard error (sample standard deviation / sqrt(n))."""
+    n = len(values)
+    return float(np.mean(values)), (float(np.std(values, ddof=1) / np.sqrt(n)) if n > 1 else None)
 
 
 # ---- points, only where the samples resolve them ----------------------------------------------
@@ -355,9 +320,9 @@ POINTS_P_VALUE = 0.05
 
 def flips_resolved(worse: int, better: int) -> bool:
     """Exact two-sided sign test on the discordant samples (McNemar 1947, exact form): do the
-    samples this configuration gets wrong and the float model right (`worse`) outnumber the reverse
-    (`better`), or the other way round, beyond chance at 5 %? With fewer than 6 discordant samples
-    nothing is resolved, whatever the split."""
+    samples this configuration gets wrong and the reference right (`worse`) outnumber the reverse
+    (`better`), or the other way round, beyond chance at 5 %? Under 6 discordant samples nothing is
+    resolved, however they split."""
     trials = worse + better
     if trials == 0:
         return False
@@ -374,56 +339,50 @@ def metric_keys(kind: str, labelled: bool) -> tuple[str | None, str]:
     return "sensitivity_agreement_pt", "float_recovery_agreement_pt"
 
 
+POINT_KEYS = ("sensitivity_pt", "float_recovery_pt", "sensitivity_agreement_pt", "float_recovery_agreement_pt")
 # Every key a row of the sweep may carry (report.json's layers[]; docs/report.md and docs/repair.md).
-ROW_KEYS = ("sqnr_isolated_db", "cosine_isolated", "isolated_output_sqnr_db", "isolated_output_sqnr_se_db",
-            "isolated_output_sqnr_ci95_db", "isolated_output_kl_mnats", "isolated_output_kl_se_mnats",
-            "output_sqnr_if_float_db", "float_recovery_db", "float_recovery_se_db", "float_recovery_ci95_db",
-            "sensitivity_pt", "float_recovery_pt", "sensitivity_agreement_pt", "float_recovery_agreement_pt",
-            "sensitivity_rank")
+ROW_KEYS = ("sensitivity_rank", "isolated_output_sample_sqnr_db", "isolated_output_sample_sqnr_se_db",
+            "isolated_output_sqnr_db", "isolated_output_kl_mnats", "isolated_output_kl_se_mnats",
+            "float_recovery_db", "float_recovery_se_db", "output_sqnr_if_float_db",
+            "sqnr_isolated_db", "cosine_isolated", *POINT_KEYS)
+RANK_KEY = "isolated_output_sample_sqnr_db"
 
 
 # ---- the sweep ---------------------------------------------------------------------------------
 
-def _read_samples(data, batch_size: int, cap: int | None) -> tuple[dict[str, np.ndarray], np.ndarray | None]:
-    """The swept samples in memory (the sweep runs on a small sample: the cap)."""
-    parts: list[dict[str, np.ndarray]] = []
-    labels: list[np.ndarray] | None = []
-    count = 0
-    for batch in data.batches(batch_size):
-        if cap is not None and count >= cap:
-            break
-        keep = len(batch.files) if cap is None else min(len(batch.files), cap - count)
-        parts.append({k: v[:keep] for k, v in batch.inputs.items()})
-        labels = None if labels is None or batch.labels is None else labels + [np.asarray(batch.labels)[:keep]]
-        count += keep
-    inputs = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
-    return inputs, (None if labels is None else np.concatenate(labels))
-
-
-class Configurations:
-    """Runs fixed-switch configurations of one switch model from a cut, fed the tensors crossing it."""
-
-    def __init__(self, switch: SwitchModel, batch_size: int, batched: bool, threads: int):
-        self.switch, self.batch_size, self.batched, self.threads = switch, batch_size, batched, threads
-        self.sessions_built = 0
-
-    def compute(self, on: set[str], state: dict[str, np.ndarray], names: list[str]) -> dict[str, np.ndarray]:
-        """Values of `names` in the configuration with switches `on`, given the tensors in `state`."""
-        wanted = [name for name in dict.fromkeys(names) if name not in state]
-        values = {name: state[name] for name in names if name in state}
-        if wanted:
-            model = _cut_model(self.switch, _fixed_nodes(self.switch, on), state, wanted)
-            self.sessions_built += 1
-            values.update(CutRunner(model, self.batch_size, self.batched, self.threads)(state))
-        return values
+def sweep_parts(switch: SwitchModel, rows: list[dict], out_name: str) -> tuple[list[Part], list[tuple[str, str]]]:
+    """The float and int8 models (tags "float", "int8") and per layer k "alone{k}" (only it int8, read
+    from the float model at its start) and "kept{k}" (only it float, read from the int8 model), with
+    the (tag, name) outputs the figures need: each configuration's model output and, for the
+    isolated tensor error, each layer's own tensor alone and in float."""
+    everything = set(switch.switches)
+    cuts = find_cuts(switch, [row["name"] for row in rows])
+    parts, wanted, reads = [], [("int8", out_name)], {"float": set(), "int8": set()}
+    for k, row in enumerate(rows):
+        live = set(cuts.live[cuts.start_of[row["name"]]])
+        mine = set(switch.layer_switches[row["name"]])
+        own = switch.value_of.get(row["tensor"], row["tensor"])
+        for tag, source, on, outputs in ((f"alone{k}", "float", mine, [out_name, own]),
+                                         (f"kept{k}", "int8", everything - mine, [out_name])):
+            nodes = _needed_nodes(_fixed_nodes(switch, on), live, outputs)
+            read = {x for n in nodes for x in n.input} & live
+            read |= set(outputs) & live
+            reads[source] |= read
+            parts.append(Part(tag, nodes, source, read))
+            wanted += [(tag, name) for name in outputs]
+        wanted.append(("float", own))
+        reads["float"].add(own)
+    inputs = {i.name for i in switch.model.graph.input} - everything
+    chains = [Part(tag, _needed_nodes(_fixed_nodes(switch, on), inputs, sorted(reads[tag] | extra)), None, inputs)
+              for tag, on, extra in (("float", set(), set()), ("int8", everything, {out_name}))]
+    return chains + parts, wanted
 
 
 def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers: list[dict], data,
           batch_size: int, kind: str, samples_available: int | None = None, sample_cap: int = DEFAULT_SAMPLE_CAP,
           progress=None, threads: int = 0) -> dict:
-    """Only-this-layer-int8 and only-this-layer-float, for every layer, on `data` (a sample of at most
-    `sample_cap` evaluation files). This function runs ~60 lines of steps in order: the passes, then
-    the figures (`figures_of`) and the ranking (`rank`).
+    """Only-this-layer-int8 and only-this-layer-float for every layer, on `data` (a sample of at most
+    `sample_cap` evaluation files), through one sweep model (see above); then `figures_of`.
 
     Returns {"rows": {layer: {...ROW_KEYS...}}, "ranking": [layer names, worst first], summary...}.
     """
@@ -431,70 +390,63 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
     output = reference.output_names[0]
     out_name = switch.value_of.get(output, output)
     active = [row for row in layers if switch.layer_switches.get(row["name"])]
-    inputs, labels = _read_samples(data, batch_size, sample_cap)
-    samples = len(next(iter(inputs.values())))
+    inferred = onnx.shape_inference.infer_shapes(switch.model).graph
+    elem_types = {v.name: v.type.tensor_type.elem_type for v in list(inferred.value_info) + list(inferred.input)
+                  if v.type.tensor_type.elem_type != TensorProto.FLOAT}
+    parts, wanted = sweep_parts(switch, active, out_name)
+    model, names = sweep_graph(switch, parts, wanted, elem_types)
+    where = dict(zip(wanted, names))
     float_runner = Runner(reference.model, [output], batch_size=batch_size, threads=threads)
-    float_out = np.concatenate([float_runner({k: v[i:i + batch_size] for k, v in inputs.items()})[output]
-                                for i in range(0, samples, batch_size)])
-    runs = Configurations(switch, batch_size, batch_size > 1 and float_runner.batched is not None, threads)
-    everything = set(switch.switches)
-    cuts = find_cuts(switch, [row["name"] for row in active])
-    state = {"float": dict(inputs), "int8": dict(inputs)}
-    isolated, kept_float, tensor_error = {}, {}, {}
-    steps = sorted(set(cuts.start_of.values()))
-    done = 0
-    for step, start in enumerate(steps):
-        live = cuts.live[start]
-        # advance the float and the int8 model to this cut (from the previous one)
-        state = {"float": runs.compute(set(), state["float"], live),
-                 "int8": runs.compute(everything, state["int8"], live)}
-        here = [row for row in active if cuts.start_of[row["name"]] == start]
-        own = [switch.value_of.get(row["tensor"], row["tensor"]) for row in here]
-        reference_values = runs.compute(set(), state["float"], own)
-        for row, tensor in zip(here, own):
-            mine = set(switch.layer_switches[row["name"]])
-            got = runs.compute(mine, state["float"], [out_name, tensor])
-            isolated[row["name"]] = got[out_name]
-            tensor_error[row["name"]] = ErrorSums()
-            tensor_error[row["name"]].update(reference_values[tensor], got[tensor])
-            kept_float[row["name"]] = runs.compute(everything - mine, state["int8"], [out_name])[out_name]
+    runner = Runner(model, sorted(set(names)), faithful=True, batch_size=batch_size, threads=threads)
+    float_outs, outs = [], {tag: [] for tag in [p.tag for p in parts]}
+    tensor_error = {row["name"]: ErrorSums() for row in active}
+    labels: list | None = []
+    samples = 0
+    for batch in data.batches(batch_size):
+        keep = len(batch.files) if sample_cap is None else min(len(batch.files), sample_cap - samples)
+        if keep <= 0:
+            break
+        inputs = {k: v[:keep] for k, v in batch.inputs.items()}
+        labels = None if labels is None or batch.labels is None else labels + list(batch.labels[:keep])
+        samples += keep
+        float_outs.append(float_runner(inputs)[output])
+        got = runner(inputs)
+        outs["int8"].append(got[where[("int8", out_name)]])
+        for k, row in enumerate(active):
+            own = switch.value_of.get(row["tensor"], row["tensor"])
+            outs[f"alone{k}"].append(got[where[(f"alone{k}", out_name)]])
+            outs[f"kept{k}"].append(got[where[(f"kept{k}", out_name)]])
+            tensor_error[row["name"]].update(got[where[("float", own)]], got[where[(f"alone{k}", own)]])
         if progress is not None:
-            now = samples * (step + 1) // len(steps)
-            progress.update(now - done)
-            done = now
-    int8_out = runs.compute(everything, state["int8"], [out_name])[out_name]
-    rows, summary = figures_of(layers, float_out, int8_out, isolated, kept_float, tensor_error, labels, kind)
+            progress.update(keep)
+    joined = {tag: np.concatenate(values) for tag, values in outs.items() if values}
+    isolated = {row["name"]: joined[f"alone{k}"] for k, row in enumerate(active)}
+    kept_float = {row["name"]: joined[f"kept{k}"] for k, row in enumerate(active)}
+    rows, summary = figures_of(layers, np.concatenate(float_outs), joined["int8"], isolated, kept_float,
+                               tensor_error, None if labels is None else np.asarray(labels), kind)
     summary.update({
         "samples_used": samples,
         "samples_available": samples_available if samples_available is not None else samples,
         "sample_cap": sample_cap,
         "layers_swept": len(active),
         "runs_per_sample": 1 + 2 * len(active),
-        "sessions_built": runs.sessions_built,
-        "design": "each configuration a plain model with its switches fixed, run from the first node its "
-                  "layer's quantizers touch, fed from float and int8 passes that advance layer by layer",
+        "design": "one sweep model: the float and the int8 model, and per layer its two configurations as "
+                  "plain models with the switches fixed, each run only from the first node its layer's "
+                  "quantizers touch, reading the float or int8 model's tensors there",
     })
     return {"rows": rows, **summary}
 
 
-def _capped_db(signal: np.ndarray, noise: np.ndarray) -> np.ndarray:
-    """SQNR of bootstrap replicates, capped as qfit.measure.compare caps a single figure."""
-    return np.clip(sqnr_db_of(signal, noise), -SQNR_CAP_DB, SQNR_CAP_DB)
-
-
 def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, isolated: dict, kept_float: dict,
                tensor_error: dict, labels: np.ndarray | None, kind: str) -> tuple[dict, dict]:
-    """The rows (ROW_KEYS) and the section's summary from the per-sample outputs of each configuration."""
+    """The rows (ROW_KEYS) and the section's summary from the outputs of each configuration.
+    (~70 lines: one figure after another, each a line or two.)"""
     classification = kind == "classification"
     labelled = classification and labels is not None
     samples = len(float_out)
-    signal = np.sum(float_out.reshape(samples, -1).astype(np.float64) ** 2, axis=1)
-    weights = bootstrap_weights(samples)
-    resampled_signal = weights @ signal
+    signal = float(np.sum(float_out.astype(np.float64) ** 2))
     int8 = output_figures(float_out, int8_out, classification)
-    int8_db = sqnr_from_sums(float(signal.sum()), float(int8.noise.sum()))
-    int8_replicates = _capped_db(resampled_signal, weights @ int8.noise)
-    truth = None
+    truth = float_predicted = None
     if classification:
         float_predicted = np.argmax(float_out.reshape(samples, -1), axis=1)
         truth = labels if labelled else float_predicted
@@ -502,27 +454,25 @@ def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, 
     rows, points = {}, {"isolated": {}, "float": {}}
     for row in layers:
         name = row["name"]
-        entry = {key: None for key in ROW_KEYS}
+        entry = {key: None for key in ROW_KEYS if key not in POINT_KEYS or key in (isolated_key, float_key)}
         rows[name] = entry
         if name not in isolated:
             continue
         alone = output_figures(float_out, isolated[name], classification)
         kept = output_figures(float_out, kept_float[name], classification)
+        mean, se = mean_and_se(alone.sqnr_db)
+        entry["isolated_output_sample_sqnr_db"], entry["isolated_output_sample_sqnr_se_db"] = round_db(mean), _r(se)
+        entry["isolated_output_sqnr_db"] = round_db(sqnr_from_sums(signal, float(alone.noise.sum())))
+        # per sample: how many dB keeping this layer float gains over the all-int8 output
+        mean, se = mean_and_se(kept.sqnr_db - int8.sqnr_db)
+        entry["float_recovery_db"], entry["float_recovery_se_db"] = round_db(mean), _r(se)
+        entry["output_sqnr_if_float_db"] = round_db(sqnr_from_sums(signal, float(kept.noise.sum())))
         entry["sqnr_isolated_db"] = round_db(tensor_error[name].sqnr_db())
         entry["cosine_isolated"] = round(tensor_error[name].cosine(), 6)
-        entry["isolated_output_sqnr_db"] = round_db(sqnr_from_sums(float(signal.sum()), float(alone.noise.sum())))
-        se, ci = _interval(_capped_db(resampled_signal, weights @ alone.noise))
-        entry["isolated_output_sqnr_se_db"], entry["isolated_output_sqnr_ci95_db"] = round_db(se), [round_db(v) for v in ci]
-        kept_db = sqnr_from_sums(float(signal.sum()), float(kept.noise.sum()))
-        entry["output_sqnr_if_float_db"] = round_db(kept_db)
-        entry["float_recovery_db"] = round_db(kept_db - int8_db)
-        se, ci = _interval(_capped_db(resampled_signal, weights @ kept.noise) - int8_replicates)
-        entry["float_recovery_se_db"], entry["float_recovery_ci95_db"] = round_db(se), [round_db(v) for v in ci]
         if not classification:
             continue
-        entry["isolated_output_kl_mnats"] = round(1000.0 * float(alone.kl_nats.mean()), 4)
-        entry["isolated_output_kl_se_mnats"] = round(1000.0 * float(alone.kl_nats.std(ddof=1)) / np.sqrt(samples), 4) \
-            if samples > 1 else None
+        mean, se = mean_and_se(1000.0 * alone.kl_nats)
+        entry["isolated_output_kl_mnats"], entry["isolated_output_kl_se_mnats"] = round(mean, 4), _r(se, 4)
         float_right, alone_right = float_predicted == truth, alone.predicted == truth
         int8_right, kept_right = int8.predicted == truth, kept.predicted == truth
         worse, better = int(np.sum(float_right & ~alone_right)), int(np.sum(~float_right & alone_right))
@@ -531,49 +481,48 @@ def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, 
         points["float"][name] = (100.0 * (saved - lost) / samples, flips_resolved(saved, lost))
     shown = {view: any(resolved for _, resolved in points[view].values()) for view in points}
     for view, key in (("isolated", isolated_key), ("float", float_key)):
-        if key is not None and shown[view]:
+        if classification and shown[view]:
             for name, (value, _) in points[view].items():
                 rows[name][key] = round(value, 4)
-    for name, entry in rows.items():  # only the keys of this kind of output
-        for key in ("sensitivity_pt", "float_recovery_pt", "sensitivity_agreement_pt", "float_recovery_agreement_pt"):
-            if key not in (isolated_key, float_key):
-                del entry[key]
-    int8_drop = None
-    if classification:
-        int8_drop = 100.0 * (int(np.sum(float_predicted == truth)) - int(np.sum(int8.predicted == truth))) / samples
     ranking = rank(layers, rows)
     for position, name in enumerate(ranking, 1):
         rows[name]["sensitivity_rank"] = position
-    resolution = 100.0 / samples
+    int8_drop = None
+    if classification:
+        int8_drop = 100.0 * (int(np.sum(float_predicted == truth)) - int(np.sum(int8.predicted == truth))) / samples
     summary = {
         "metric": ("top1_drop_pt" if labelled else "agreement_drop_pt") if classification else "output_sqnr_db",
-        "ranked_by": RANKED_BY,
-        "uncertainty": f"bootstrap over the samples ({BOOTSTRAP_RESAMPLES} resamples): standard error (_se_) and "
-                       f"95 % percentile interval (_ci95_); KL: standard error of the mean",
-        # the keys of the points columns, or None where the samples do not resolve any layer's points
+        "ranked_by": f"{RANK_KEY}, lowest first: the model output's SQNR per sample, in dB, averaged over the "
+                     f"samples, with only this layer int8 (ties: float_recovery_db, highest first)",
+        "uncertainty": "_se_ keys: standard error of the mean over the samples",
+        # the keys of the points columns; None where no layer's points are resolved by the samples
         "isolated_key": isolated_key if shown["isolated"] else None,
-        "float_key": (float_key if shown["float"] or shown["isolated"] else "output_sqnr_if_float_db")
-        if classification else float_key,
-        "points_shown": shown if classification else {"isolated": False, "float": False},
-        "points_resolution_pt": round(resolution, 4) if classification else None,
-        "points_note": None if not classification else (
-            f"one sample is {resolution:.2f} pt; a points figure is shown only where some layer's flips are "
-            f"beyond chance (exact sign test on the discordant samples, p < {POINTS_P_VALUE:g}): "
-            + ", ".join(f"{view} {'shown' if shown[view] else 'not resolved'}" for view in ("isolated", "float"))),
+        "float_key": float_key if (not classification or shown["float"]) else None,
+        "points_shown": shown,
+        "points_resolution_pt": round(100.0 / samples, 4) if classification else None,
+        "points_note": _points_note(samples, shown) if classification else None,
         "int8_drop_pt_on_samples": None if int8_drop is None else round(int8_drop, 4),
-        "int8_output_sqnr_db_on_samples": round_db(int8_db),
+        "int8_output_sqnr_db_on_samples": round_db(sqnr_from_sums(signal, float(int8.noise.sum()))),
         "ranking": ranking,
+        "row_keys": list(rows[ranking[0]]) if ranking else [],   # the keys this sweep put on each layer row
     }
     return rows, summary
 
 
-RANKED_BY = ("isolated_output_sqnr_db, lowest first (the model output's SQNR when only this layer is int8); "
-             "ties by float_recovery_db, highest first")
+def _r(value: float | None, digits: int = 2) -> float | None:
+    return None if value is None else round(value, digits)
+
+
+def _points_note(samples: int, shown: dict) -> str:
+    views = ", ".join(f"{'only it int8' if view == 'isolated' else 'only it float'}: "
+                      f"{'shown' if shown[view] else 'not resolved, not shown'}" for view in ("isolated", "float"))
+    return (f"{samples} samples: one flipped prediction is {100.0 / samples:.2f} pt. A points column is shown "
+            f"only where some layer's flips are beyond chance (exact sign test, p < {POINTS_P_VALUE:g}); {views}")
 
 
 def rank(layers: list[dict], rows: dict) -> list[str]:
-    """Layer names, worst first, by the continuous figures (see RANKED_BY)."""
-    swept = [row["name"] for row in layers if rows[row["name"]]["isolated_output_sqnr_db"] is not None]
+    """Layer names, worst first: lowest RANK_KEY, then highest float_recovery_db, then network order."""
+    swept = [row["name"] for row in layers if rows[row["name"]][RANK_KEY] is not None]
     order = {name: i for i, name in enumerate(swept)}
-    return sorted(swept, key=lambda name: (rows[name]["isolated_output_sqnr_db"],
-                                           -(rows[name]["float_recovery_db"] or 0.0), order[name]))
+    return sorted(swept, key=lambda name: (rows[name][RANK_KEY], -(rows[name]["float_recovery_db"] or 0.0),
+                                           order[name]))
