@@ -264,3 +264,10 @@ def test_refusals_are_one_line_and_write_nothing(tmp_path, capsys):
                                   tmp_path / "c")
     assert "--export-alignment" in _refused(capsys, ["export", str(model), "--out", str(tmp_path / "d"),
                                                      "--export-alignment", "24"], tmp_path / "d")
+    named_like_an_output = tmp_path / "e" / "qmodel.json"     # the input is never overwritten
+    named_like_an_output.parent.mkdir()
+    onnx.save(hostile_model(), str(named_like_an_output), format="protobuf")
+    before = named_like_an_output.read_bytes()
+    assert main(["export", str(named_like_an_output), "--out", str(tmp_path / "e")]) == 2
+    assert "would overwrite the input model" in capsys.readouterr().err
+    assert named_like_an_output.read_bytes() == before and sorted(os.listdir(tmp_path / "e")) == ["qmodel.json"]

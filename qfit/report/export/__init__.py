@@ -59,6 +59,9 @@ def export_files(model: onnx.ModelProto, path: str, out_dir: str, options: Expor
     assign_names(export, options.prefix)
     names = {"header": f"{options.prefix}.h", "source": f"{options.prefix}.c", "manifest": f"{options.prefix}.json"}
     manifest = build_manifest(export, os.path.basename(path), options.prefix, options.alignment, names)
+    for name in names.values():
+        if os.path.realpath(os.path.join(out_dir, name)) == os.path.realpath(path):
+            raise QfitError(f"--out: writing {os.path.join(out_dir, name)} would overwrite the input model {path}")
     return {
         os.path.join(out_dir, names["header"]): render_header(export, options.prefix, options.alignment).encode(),
         os.path.join(out_dir, names["source"]): render_source(export, options.prefix, names["header"]).encode(),
