@@ -15,7 +15,9 @@ type the record says
   * its window (kernel, stride, dilation, padding) and whether patch-based tiling can run it, its
     scratch bytes, the shape rules it needs at another input size;
   * what the loader does with it (fold a batch norm into it, drop it, make it an initializer,
-    evaluate it on constants), and how equalization rescales it.
+    evaluate it on constants), how equalization rescales it, the layer kind the C export writes,
+    and its integer kernel (qfit/ops/kernels/, one file per family).
+windows.py holds the sliding-window geometry that convolutions and pools share.
 
 Quantization (quant/), memory (memory/) and the loader (graph/) ask these questions through the
 functions below; none of them compares op type names. An op type that is not registered stays float:
