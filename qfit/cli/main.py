@@ -19,8 +19,23 @@ from qfit.errors import QfitError
 EXIT_OK, EXIT_FAIL, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
+class _HelpFormatter(argparse.HelpFormatter):
+    """--help names each option's default (the library's own, see `default_of`), unless it has none."""
+
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if ("default" not in text and action.option_strings and action.default is not None
+                and action.default is not False and action.default is not argparse.SUPPRESS):
+            text += " (default: %(default)s)"
+        return text
+
+
 class _Parser(argparse.ArgumentParser):
-    """argparse, but a usage error is one line on stderr and exit 2."""
+    """argparse, but a usage error is one line on stderr and exit 2, and --help shows the defaults."""
+
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("formatter_class", _HelpFormatter)
+        super().__init__(*args, **kwargs)
 
     def error(self, message):
         raise QfitError(f"{self.prog}: {message}")
