@@ -141,6 +141,38 @@ def check_multipliers(model: onnx.ModelProto, manifest: dict) -> int:
     return checked
 
 
+def assert_factors_are_the_integer_paths(model: onnx.ModelProto, manifest: dict) -> int:
+    """Every exported (M0, shift) is the one qfit's integer path runs the layer with (its per-layer
+    record); a layer the path runs as a lookup table (a lone activation) has no factors to compare.
+    Returns how many layers were compared."""
+    from qfit.measure.integer import layer_requantization
+
+    records = layer_requantization(model)
+    arrays = {a["name"]: a for a in manifest["arrays"]}
+    compared = 0
+    for layer in manifest["layers"]:
+        record = records.get(layer["name"])
+        if layer["multipliers"] is None:
+            assert record is None, layer["name"]
+            continue
+        ours = list(zip(manifest_values(arrays[layer["multipliers"]]).tolist(),
+                        manifest_values(arrays[layer["shifts"]]).tolist()))
+        if "lookup_table_entries" in record:
+            continue
+        if "inputs" in record:       # Concat: per input, "copied" where the grids are equal (a factor of 1)
+            theirs = [(1 << 30, 1) if r == "copied" else (r["multiplier"][0], r["shift"][0]) for r in record["inputs"]]
+        else:
+            theirs = list(zip(record["multiplier"], record["shift"]))
+            if "input0_multiplier" in record:
+                theirs += [(record["input0_multiplier"], record["input0_shift"]),
+                           (record["input1_multiplier"], record["input1_shift"])]
+        if len(ours) == 1 and len(set(theirs)) == 1:   # one factor stands for equal per-position ones
+            theirs = theirs[:1]
+        assert ours == theirs, layer["name"]
+        compared += 1
+    return compared
+
+
 # ---- the C side ----------------------------------------------------------------------------------
 
 C_CHECK_PROGRAM = r"""
@@ -565,6 +597,12 @@ def test_tensor_offsets_are_the_reports_arena_plan(demo):
 
 def test_multipliers_and_shifts_are_the_nearest_fixed_point_factors(demo):
     assert check_multipliers(demo["model"], demo["manifest"]) > 1000
+
+
+def test_multipliers_and_shifts_are_those_the_integer_path_runs(demo):
+    pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
+    assert assert_factors_are_the_integer_paths(demo["model"], demo["manifest"]) == sum(
+        layer["multipliers"] is not None for layer in demo["manifest"]["layers"])
 
 
 @pytest.fixture(scope="module")

@@ -21,7 +21,7 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from qfit.cli.main import main
-from test_export import (assert_round_trip, build_check_program, check_multipliers, manifest_values, needs_cc,
+from test_export import (assert_factors_are_the_integer_paths, assert_round_trip, build_check_program, check_multipliers, manifest_values, needs_cc,
                          read_dump, run_cc, tables_match_manifest)
 
 HOSTILE = {
@@ -229,6 +229,13 @@ def test_the_c_checks_catch_a_changed_weight_and_an_overlapping_tensor(hostile, 
         return changed
     result = _planted(hostile, tmp_path / "o", overlap)
     assert result.returncode == 1 and f"overlap: tensors {a['index']} and {b['index']}" in result.stderr
+
+
+def test_multipliers_and_shifts_are_those_the_integer_path_runs(hostile):
+    pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
+    with_factors = sum(layer["multipliers"] is not None for layer in hostile["manifest"]["layers"])
+    # every layer with factors but the lone ReLU, which the integer path runs as a lookup table
+    assert assert_factors_are_the_integer_paths(hostile["model"], hostile["manifest"]) == with_factors - 1
 
 
 def test_every_layer_kind_round_trips_through_the_integer_path(hostile):
