@@ -22,6 +22,8 @@ from onnx import numpy_helper
 
 from qfit import ops
 from qfit.errors import QfitError
+from qfit.graph.model import LoadedModel
+from qfit.memory.budget import BudgetResult
 from qfit.quant.fixed_point import quantize_multipliers
 from qfit.quant.plan import Plan
 
@@ -254,7 +256,7 @@ def _bias(layer: Layer, quantizers: _Quantizers, tensor: str, in_scale: float, w
 
 @dataclass
 class _Context:
-    loaded: object
+    loaded: LoadedModel
     plan: Plan
     quantizers: _Quantizers
     tensor_index: dict[str, int]
@@ -395,7 +397,7 @@ def _add_tensor(name: str, where: str, ctx: _Context, tensors: list[Tensor], mem
                           first_step=slot["first_step"], last_step=slot["last_step"]))
 
 
-def _check_all_int8(plan: Plan, loaded, path: str) -> None:
+def _check_all_int8(plan: Plan, loaded: LoadedModel, path: str) -> None:
     for node in loaded.graph.node:
         if node.name in plan.float_nodes:
             raise QfitError(f"export: {path}: layer '{node.name}' ({node.op_type}) is kept float; the export "
@@ -408,7 +410,7 @@ def _check_all_int8(plan: Plan, loaded, path: str) -> None:
             raise QfitError(f"export: {path}: layer '{node}' has {weight.bits}-bit weights; the export covers int8")
 
 
-def collect(model: onnx.ModelProto, path: str, loaded, plan: Plan, budget) -> ExportModel:
+def collect(model: onnx.ModelProto, path: str, loaded: LoadedModel, plan: Plan, budget: BudgetResult) -> ExportModel:
     """The export's layers (in the budget's execution order), tensors (at the budget's arena offsets)
     and parameter arrays for the QDQ `model`, read back as (`loaded`, `plan`) by qdq_read."""
     _check_all_int8(plan, loaded, path)
@@ -416,10 +418,6 @@ def collect(model: onnx.ModelProto, path: str, loaded, plan: Plan, budget) -> Ex
     order = list(budget.order["order"])
     if sorted(order) != sorted(nodes):
         raise RuntimeError("export: the budget's execution order does not name the model's nodes")
-    consumers: dict[str, list[onnx.NodeProto]] = {}
-    for node in loaded.graph.node:
-        for name in node.input:
-            consumers.setdefault(name, []).append(node)
     memory = budget.memory
     placement = {slot["tensor"]: slot for slot in budget.arena["plan"]}
     ctx = _Context(loaded, plan, _Quantizers(model, path), {}, {})
@@ -433,7 +431,7 @@ def collect(model: onnx.ModelProto, path: str, loaded, plan: Plan, budget) -> Ex
         if ops.clamp_bounds(node, loaded.constants.get) is not None and node.input[0] in plan.fused:
             continue    # folded into the previous layer's clamp
         out = node.output[0]
-        fused = consumers[out][0] if out in plan.fused else None
+        fused = loaded.index.consumers(out)[0] if out in plan.fused else None
         out_t = plan.fused.get(out, out)
         _add_tensor(out_t, f"output of '{name}'", ctx, tensors, memory, placement)
         layer = _build_layer(len(layers), step, node, out_t, ctx)
