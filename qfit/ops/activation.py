@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.elementwise import POINTWISE
+from qfit.ops.elementwise import POINTWISE, elementwise_ops
 from qfit.ops.kernels import elementwise as elementwise_kernels
 from qfit.ops.registry import ConstantOf, Op, attr, register
 
@@ -52,5 +52,5 @@ register({
     "HardSigmoid": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
     "HardSwish": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
     "Tanh": Op(integer_kernel=elementwise_kernels.build_lookup, **POINTWISE),
-    "Softmax": Op(cost_kind="elementwise", cost=POINTWISE["cost"]),
+    "Softmax": Op(cost_kind="elementwise", cost=elementwise_ops),
 })

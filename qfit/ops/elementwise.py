@@ -5,7 +5,7 @@ from __future__ import annotations
 from onnx import NodeProto
 
 from qfit.ops.kernels import elementwise as elementwise_kernels
-from qfit.ops.registry import Op, ShapeOf, register
+from qfit.ops.registry import Op, ShapeOf, float_op, register
 from qfit.sizes import element_count
 
 
@@ -34,7 +34,6 @@ def tileable_pointwise(node: NodeProto, shape_of: ShapeOf, is_constant) -> bool:
 # Elementwise with a cost of one operation per output element, running in place and tileable.
 POINTWISE = dict(cost_kind="elementwise", cost=elementwise_ops, alias="inplace", tileable=tileable_pointwise)
 _ALL = None  # quantized_inputs=None: every non-constant input is quantized
-_FOLD_ONLY = Op(output="float", quantized_inputs=(), constant_foldable=True, note="not supported in int8: kept float")
 
 register({
     "Add": Op(integer_kernel=elementwise_kernels.build_add,
@@ -47,5 +46,6 @@ register({
     "Div": Op(integer_kernel=elementwise_kernels.build_div,
               quantized_inputs=(0,), constant_inputs=(1,), constant_foldable=True,
               note="by a constant only (a multiply by its reciprocal); by a tensor it stays float", **POINTWISE),
-    **{op_type: _FOLD_ONLY for op_type in ("Neg", "Sqrt", "Pow", "Min", "Max", "Floor", "Equal", "Not", "Where")},
+    **{op_type: float_op(constant_foldable=True)
+       for op_type in ("Neg", "Sqrt", "Pow", "Min", "Max", "Floor", "Equal", "Not", "Where")},
 })

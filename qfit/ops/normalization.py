@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.registry import ConstantOf, Op, attr, register
+from qfit.ops.registry import ConstantOf, attr, float_op, register
 
 
 def _batchnorm_affine(node: NodeProto, constant_of: ConstantOf) -> tuple[np.ndarray, np.ndarray] | None:
@@ -25,6 +25,5 @@ def _batchnorm_affine(node: NodeProto, constant_of: ConstantOf) -> tuple[np.ndar
 
 
 register({
-    "BatchNormalization": Op(output="float", quantized_inputs=(), folds_into_producer=_batchnorm_affine,
-                             note="not supported in int8: kept float"),
+    "BatchNormalization": float_op(folds_into_producer=_batchnorm_affine),
 })

@@ -6,7 +6,7 @@ import numpy as np
 from onnx import NodeProto
 
 from qfit.ops.kernels import pool as pool_kernels
-from qfit.ops.registry import Op, ShapeOf, attr, register
+from qfit.ops.registry import Op, ShapeOf, attr, float_op, register
 from qfit.ops.windows import pool_window, tileable_by
 from qfit.sizes import element_count
 
@@ -31,6 +31,5 @@ register({
     "GlobalMaxPool": Op(integer_kernel=pool_kernels.build_max_pool,
                         output="shared", export_kind="GLOBAL_MAX_POOL", **_REDUCE),
     "ReduceMean": Op(integer_kernel=pool_kernels.build_mean, **_REDUCE),
-    "ReduceProd": Op(output="float", quantized_inputs=(), constant_foldable=True,
-                     note="not supported in int8: kept float"),
+    "ReduceProd": float_op(constant_foldable=True),
 })

@@ -8,7 +8,7 @@ counted at 4 bytes each, and the report says so.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Callable, Mapping, Sequence
 
 import numpy as np
@@ -101,6 +101,12 @@ class Op:
 OPS: dict[str, Op] = {}
 
 FLOAT_OP = Op(output="float", quantized_inputs=(), note="not supported in int8: kept float")
+
+
+def float_op(**facts) -> Op:
+    """A registered op type with no int8 meaning (it stays float) that the loader still knows:
+    `facts` say what (e.g. constant_foldable=True, passthrough=True)."""
+    return replace(FLOAT_OP, **facts)
 
 
 def register(table: dict[str, Op]) -> None:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.registry import Op, ShapeOf, attr, register
+from qfit.ops.registry import ShapeOf, attr, float_op, register
 
 
 def _shape_value(node: NodeProto, shape_of: ShapeOf) -> list[np.ndarray] | None:
@@ -16,10 +16,7 @@ def _shape_value(node: NodeProto, shape_of: ShapeOf) -> list[np.ndarray] | None:
     return [np.array(shape[start:end], dtype=np.int64)]
 
 
-_FOLD_ONLY = Op(output="float", quantized_inputs=(), constant_foldable=True, note="not supported in int8: kept float")
-
 register({
-    "Shape": Op(output="float", quantized_inputs=(), constant_foldable=True, fold_from_shape=_shape_value,
-                note="not supported in int8: kept float"),
-    **{op_type: _FOLD_ONLY for op_type in ("Cast", "Gather", "Range", "ConstantOfShape", "Expand")},
+    "Shape": float_op(constant_foldable=True, fold_from_shape=_shape_value),
+    **{op_type: float_op(constant_foldable=True) for op_type in ("Cast", "Gather", "Range", "ConstantOfShape", "Expand")},
 })

@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto, helper, numpy_helper
 
-from qfit.ops.registry import Op, register
+from qfit.ops.registry import float_op, register
 
 # Quantizer op types: when reading a QDQ model these are stripped to recover the layer graph.
 QDQ_OPS = ("QuantizeLinear", "DequantizeLinear")
@@ -27,10 +27,8 @@ def _constant_value(node: NodeProto) -> np.ndarray | None:
     return None
 
 
-_KEPT_FLOAT = "not supported in int8: kept float"
-
 register({
-    "Constant": Op(output="float", quantized_inputs=(), constant_value=_constant_value, note=_KEPT_FLOAT),
-    "Identity": Op(output="float", quantized_inputs=(), passthrough=True, note=_KEPT_FLOAT),
-    "Dropout": Op(output="float", quantized_inputs=(), passthrough=True, note=_KEPT_FLOAT),
+    "Constant": float_op(constant_value=_constant_value),
+    "Identity": float_op(passthrough=True),
+    "Dropout": float_op(passthrough=True),
 })
