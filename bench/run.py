@@ -38,8 +38,9 @@ from qfit.memory import budget  # noqa: E402
 from qfit import cli
 from qfit import check as pipeline
 from qfit.memory import schedule
-from qfit.data import DataFolder  # noqa: E402
-from qfit.graph.load import prepare_model  # noqa: E402
+from qfit.data import DataFolder, load_preprocess  # noqa: E402
+from qfit.graph.load import load_model, prepare_model  # noqa: E402
+from qfit.measure.integer import IntegerRunner  # noqa: E402
 from qfit.quant.plan import METHODS, make_plan  # noqa: E402
 from qfit.quant.quantize import build_qdq, calibrated_ranges  # noqa: E402
 from qfit.runtime.sessions import Runner, batch_free  # noqa: E402
@@ -54,11 +55,11 @@ HISTOGRAM_METHODS = [m for m in METHODS if m != "minmax"]
 # data passes run on two shapes of model: one whose cost is in its activations (depthwise-separable,
 # few channels: exposing tensors is expensive next to its convolutions) and one whose cost is in
 # its convolutions (many channels, 3x3 kernels).
-FULL = dict(batch_size=16, repeats=3, rss_samples=(1_000, 10_000), graph_nodes=(50, 200, 800),
+FULL = dict(batch_size=16, repeats=3, integer_samples=600, rss_samples=(1_000, 10_000), graph_nodes=(50, 200, 800),
             resnet50_width=1.0, resnet50_resolution=224, mobilenet_width=1.0, mobilenet_resolution=224,
             data_models=(("mobilenet", "MobileNetV2 0.35 96x96", lambda: zoo.mobilenet_v2_small(), 512, 256),
                          ("resnet", "ResNet-18 112x112", lambda: zoo.resnet18(112, 10), 128, 64)))
-SMOKE = dict(batch_size=8, repeats=1, rss_samples=(40, 400), graph_nodes=(12, 24, 48),
+SMOKE = dict(batch_size=8, repeats=1, integer_samples=16, rss_samples=(40, 400), graph_nodes=(12, 24, 48),
              resnet50_width=0.125, resnet50_resolution=32, mobilenet_width=0.35, mobilenet_resolution=32,
              data_models=(("mobilenet", "MobileNetV2 0.35 32x32", lambda: zoo.mobilenet_v2(0.35, 32, 10), 16, 16),
                           ("resnet", "ResNet-small 32x32", lambda: zoo.resnet_small(), 16, 16)))
@@ -204,8 +205,9 @@ def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: i
         compare_runs["float"].append(timed(lambda: exposure_only(loaded.model, compared, compare_data, batch_size)))
         compare_runs["int8"].append(timed(lambda: exposure_only(quantized.model, int8_names, compare_data,
                                                                 batch_size, faithful=True)))
-        compare_runs["compare"].append(timed(lambda: pipeline.evaluate(
-            loaded, quantized, layers, compare_data, batch_size, progress=False, threads=THREADS)))
+        compare_runs["compare"].append(timed(lambda: pipeline.evaluate(   # on the float preview: the integer
+            loaded, quantized, layers, compare_data, batch_size, progress=False, threads=THREADS,  # path has its
+            arithmetic="float")))                                                                 # own figure
     best = fastest(compare_runs)
     value = best["compare"] / best["floor"]
     float_ratio, int8_ratio = best["float"] / best["floor"], best["int8"] / best["floor"]
@@ -251,6 +253,40 @@ def quantize_export_figure(sizes: dict, work: str) -> Figure:
                   f"MobileNetV2 {width} {resolution}x{resolution}, {params_m:.2f} M params: ranges, QDQ graph, "
                   f"ONNX checker, file written ({os.path.getsize(path) / 2**20:.1f} MiB); loading the float "
                   f"model took {load_s:.2f} s more")
+
+
+# ---- the integer path against the float preview -------------------------------------------------
+
+def integer_path_figure(sizes: dict) -> Figure:
+    """The integer path (double rounding, the default) and the float preview over the same batches of the
+    demo's evaluation samples, decoded once beforehand: inference only, interleaved, fastest kept."""
+    demo = os.path.join(REPO, "calib_demo")
+    loaded = load_model(os.path.join(demo, "model.onnx"))
+    inputs = {name: loaded.shapes[name] for name in loaded.input_names}
+    preprocess = load_preprocess(os.path.join(demo, "preprocess.json"))
+    plan = make_plan(loaded)
+    calib = DataFolder(os.path.join(demo, "calib"), inputs, preprocess=preprocess, limit=sizes["integer_samples"])
+    stats = pipeline.calibrate(loaded, plan, calib, 16, progress=False, threads=THREADS)
+    quantized = build_qdq(loaded, plan, calibrated_ranges(plan, stats, "percentile", 99.99))
+    evaluation = DataFolder(os.path.join(demo, "eval"), inputs, preprocess=preprocess, limit=sizes["integer_samples"])
+    batch_size = sizes["batch_size"]
+    batches = [batch.inputs for batch in evaluation.batches(batch_size)]
+    output = quantized.dequantized.get(loaded.output_names[0], loaded.output_names[0])
+    log(f"integer path vs float preview, demo: {len(evaluation)} samples, batch {batch_size}")
+    preview = Runner(quantized.model, [output], faithful=True, batch_size=batch_size, threads=THREADS)
+    integer = IntegerRunner(quantized.model, [output], "double", batch_size)
+    runs: dict[str, list[float]] = {"preview": [], "integer": []}
+    for _ in range(sizes["repeats"]):
+        runs["preview"].append(timed(lambda: [preview(b) for b in batches]))
+        runs["integer"].append(timed(lambda: [integer(b) for b in batches]))
+    best = fastest(runs)
+    value = best["integer"] / best["preview"]
+    program = integer.program
+    return Figure("integer path / float preview (demo evaluation)", ratio_text(value), "<= 3x", value <= 3.0,
+                  f"{len(evaluation)} samples, batch {batch_size}: {len(program.integer_nodes)} nodes in integers, "
+                  f"{len(program.float_nodes)} in float; the check's evaluation also runs the preview once to "
+                  f"count changed predictions" + ("" if value <= 3.0 else "; missed: the int64 requantization "
+                                                  "passes cost more than the float preview's layers"))
 
 
 # ---- peak memory of a calibration run against the number of samples ------------------------------
@@ -451,7 +487,7 @@ def arena_zoo_figure() -> Figure:
 
 # ---- main ------------------------------------------------------------------------------------------
 
-FIGURES = ("data", "export", "rss", "graphs", "order200", "resnet50", "arena")
+FIGURES = ("data", "export", "integer", "rss", "graphs", "order200", "resnet50", "arena")
 
 
 def machine() -> str:
@@ -485,6 +521,8 @@ def main(argv: list[str] | None = None) -> int:
                                              work)
         if "export" in wanted:
             figures.append(quantize_export_figure(sizes, work))
+        if "integer" in wanted:
+            figures.append(integer_path_figure(sizes))
         if "rss" in wanted:
             figures.append(peak_rss_figure(sizes, work))
         if "graphs" in wanted:
