@@ -470,13 +470,15 @@ def _layer_nodes(layer: dict, manifest: dict, arrays: dict, nodes: list, const, 
         s_in, s_out = tensors[layer["inputs"][0]]["scale"], tensors[layer["output"]]["scale"]
         s_w = _weight_scales(layer, m0, shift, s_in, s_out)
         wq = const(f"l{i}_wq", arrays[layer["weights"]].astype(np.int8).reshape(w["shape"]))
-        nodes.append(helper.make_node("DequantizeLinear", [wq, const(f"l{i}_ws", s_w), const(f"l{i}_wz", np.zeros(s_w.size, np.int8))],
+        if s_w.size == 1:   # one scale for the whole weight: a per-tensor quantizer (scalar scale and zero point)
+            s_w = s_w.reshape(())
+        nodes.append(helper.make_node("DequantizeLinear", [wq, const(f"l{i}_ws", s_w), const(f"l{i}_wz", np.zeros(s_w.shape, np.int8))],
                                       [f"l{i}_w"], axis=0))
         operands = [ins[0], f"l{i}_w"]
         if layer["bias"]:
             bq = const(f"l{i}_bq", arrays[layer["bias"]].astype(np.int32))
             bs = (np.float32(s_in) * s_w).astype(np.float32)
-            nodes.append(helper.make_node("DequantizeLinear", [bq, const(f"l{i}_bs", bs), const(f"l{i}_bz", np.zeros(bs.size, np.int32))],
+            nodes.append(helper.make_node("DequantizeLinear", [bq, const(f"l{i}_bs", bs), const(f"l{i}_bz", np.zeros(bs.shape, np.int32))],
                                           [f"l{i}_b"], axis=0))
             operands.append(f"l{i}_b")
         if kind == "CONV":

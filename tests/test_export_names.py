@@ -44,8 +44,9 @@ HOSTILE = {
 class _Builder:
     """Q/DQ pairs, int8 weights with per-channel scales and int32 biases at input scale x weight scale."""
 
-    def __init__(self, seed: int):
+    def __init__(self, seed: int, per_tensor: bool = False):
         self.rng = np.random.default_rng(seed)
+        self.per_tensor = per_tensor          # one weight scale per layer, as `qfit check --per-tensor` writes
         self.nodes, self.inits, self.scales = [], [], {}
 
     def const(self, name, value):
@@ -63,17 +64,18 @@ class _Builder:
 
     def weights(self, tag: str, shape: tuple, x_tensor: str, bias: bool = True) -> list[str]:
         q = self.rng.integers(-127, 128, size=shape).astype(np.int8)
-        s_w = self.rng.uniform(0.002, 0.01, size=shape[0]).astype(np.float32)
+        channels = () if self.per_tensor else (shape[0],)
+        s_w = self.rng.uniform(0.002, 0.01, size=channels).astype(np.float32)
         self.nodes.append(helper.make_node(
             "DequantizeLinear", [self.const(tag + "_wq", q), self.const(tag + "_ws", s_w),
-                                 self.const(tag + "_wz", np.zeros(shape[0], np.int8))], [tag + "_w"], axis=0))
+                                 self.const(tag + "_wz", np.zeros(channels, np.int8))], [tag + "_w"], axis=0))
         names = [tag + "_w"]
         if bias:
             s_b = (self.scales[x_tensor] * s_w).astype(np.float32)
             b = self.rng.integers(-2000, 2000, size=shape[0]).astype(np.int32)
             self.nodes.append(helper.make_node(
                 "DequantizeLinear", [self.const(tag + "_bq", b), self.const(tag + "_bs", s_b),
-                                     self.const(tag + "_bz", np.zeros(shape[0], np.int32))], [tag + "_b"], axis=0))
+                                     self.const(tag + "_bz", np.zeros(channels, np.int32))], [tag + "_b"], axis=0))
             names.append(tag + "_b")
         return names
 
@@ -82,10 +84,10 @@ class _Builder:
         return output
 
 
-def hostile_model(names: dict = HOSTILE, extra_op: str | None = None) -> onnx.ModelProto:
+def hostile_model(names: dict = HOSTILE, extra_op: str | None = None, per_tensor: bool = False) -> onnx.ModelProto:
     """Conv+ReLU -> MaxPool (shared quantizer) -> depthwise Conv -> Add -> Mul -> AveragePool (pads not
     counted) -> Concat (two input scales) -> Relu alone -> GlobalAveragePool -> Flatten -> Gemm."""
-    b = _Builder(seed=7)
+    b = _Builder(seed=7, per_tensor=per_tensor)
     x = b.quantized(names["input"], 0.03, -3)
     c1 = b.node("Conv", [x, *b.weights("c1", (4, 3, 3, 3), names["input"])], "c1", names["conv1"], pads=[1, 1, 1, 1])
     r1 = b.quantized(b.node("Relu", [c1], "r1 \"out\"", names["relu1"]), 0.05, -128)
@@ -245,6 +247,22 @@ def test_every_layer_kind_round_trips_through_the_integer_path(hostile):
     feeds = np.random.default_rng(3).normal(0, 1.5, size=(6, 3, 8, 8)).astype(np.float32)
     (logits,) = assert_round_trip(hostile["model"], manifest, arrays, feeds).values()
     assert logits.shape == (6, 5) and len(np.unique(logits)) > 5
+
+
+def test_per_tensor_weights_give_one_factor_per_layer_and_round_trip(tmp_path):
+    pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
+    model = hostile_model(per_tensor=True)
+    onnx.save(model, str(tmp_path / "m.onnx"))
+    assert main(["export", str(tmp_path / "m.onnx"), "--out", str(tmp_path / "c")]) == 0
+    manifest = json.load(open(tmp_path / "c" / "qmodel.json"))
+    counts = {a["name"]: a["count"] for a in manifest["arrays"]}
+    weighted = [layer for layer in manifest["layers"] if layer["kind"] in ("CONV", "FULLY_CONNECTED")]
+    assert [counts[layer["multipliers"]] for layer in weighted] == [1, 1, 1]
+    assert [counts[layer["bias"]] for layer in weighted] == [4, 4, 5]
+    assert check_multipliers(model, manifest) > 10
+    assert_factors_are_the_integer_paths(model, manifest)
+    feeds = np.random.default_rng(5).normal(0, 1.5, size=(4, 3, 8, 8)).astype(np.float32)
+    assert_round_trip(model, manifest, {a["name"]: manifest_values(a) for a in manifest["arrays"]}, feeds)
 
 
 def _refused(capsys, args, out) -> str:
