@@ -48,6 +48,7 @@ from qfit.runtime.sessions import Runner, batch_free  # noqa: E402
 THREADS = 0  # set from --threads in main()
 
 import zoo  # noqa: E402  (tests/zoo.py: models built with onnx.helper)
+import check_figures  # noqa: E402  (bench/check_figures.py: issue 15's whole-check figures)
 
 HISTOGRAM_METHODS = [m for m in METHODS if m != "minmax"]
 
@@ -55,11 +56,13 @@ HISTOGRAM_METHODS = [m for m in METHODS if m != "minmax"]
 # data passes run on two shapes of model: one whose cost is in its activations (depthwise-separable,
 # few channels: exposing tensors is expensive next to its convolutions) and one whose cost is in
 # its convolutions (many channels, 3x3 kernels).
-FULL = dict(batch_size=16, repeats=3, integer_samples=600, rss_samples=(1_000, 10_000), graph_nodes=(50, 200, 800),
+FULL = dict(batch_size=16, repeats=3, check_repeats=2, check_demo_limits=(None, None), halves_samples=None,
+            check_mobilenet=(1.0, 224), check_mobilenet_samples=(8, (64, 256)), integer_samples=600, rss_samples=(1_000, 10_000), graph_nodes=(50, 200, 800),
             resnet50_width=1.0, resnet50_resolution=224, mobilenet_width=1.0, mobilenet_resolution=224,
             data_models=(("mobilenet", "MobileNetV2 0.35 96x96", lambda: zoo.mobilenet_v2_small(), 512, 256),
                          ("resnet", "ResNet-18 112x112", lambda: zoo.resnet18(112, 10), 128, 64)))
-SMOKE = dict(batch_size=8, repeats=1, integer_samples=16, rss_samples=(40, 400), graph_nodes=(12, 24, 48),
+SMOKE = dict(batch_size=8, repeats=1, check_repeats=1, check_demo_limits=(16, 32), halves_samples=8,
+             check_mobilenet=(0.35, 32), check_mobilenet_samples=(4, (8, 16)), integer_samples=16, rss_samples=(40, 400), graph_nodes=(12, 24, 48),
              resnet50_width=0.125, resnet50_resolution=32, mobilenet_width=0.35, mobilenet_resolution=32,
              data_models=(("mobilenet", "MobileNetV2 0.35 32x32", lambda: zoo.mobilenet_v2(0.35, 32, 10), 16, 16),
                           ("resnet", "ResNet-small 32x32", lambda: zoo.resnet_small(), 16, 16)))
@@ -135,6 +138,11 @@ def exposure_only(model: onnx.ModelProto, tensors: list[str], data: DataFolder, 
         runner(batch.inputs)
 
 
+# Targets of the data passes (min-max, histograms, comparison): issue 15 set its own for the
+# depthwise-separable model, whose cost is in its activations; the convolution-heavy one keeps issue 7's.
+DATA_TARGETS = {"mobilenet": (1.5, 2.5, 3.0), "resnet": (1.3, 2.0, 2.5)}
+
+
 def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: int, sizes: dict,
                       threads: int, work: str) -> list[Figure]:
     """Calibration (min-max, and each histogram method) and accumulated comparison, as ratios to the
@@ -178,18 +186,21 @@ def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: i
                      f"(onnxruntime reorders each exposed tensor out of its blocked layout and cannot fuse "
                      f"a Conv with the Add after it)")
     figures = []
+    minmax_target, histogram_target, compare_target = DATA_TARGETS[tag]
     value = best["minmax"] / best["floor"]
     figures.append(Figure(
-        f"calibration / float pass, min-max ({tag})", ratio_text(value), "<= 1.3x", value <= 1.3,
+        f"calibration / float pass, min-max ({tag})", ratio_text(value), f"<= {minmax_target:g}x",
+        value <= minmax_target,
         f"{label}, {len(calib)} samples, batch {batch_size}, min/max only; float pass {best['floor']:.2f} s "
-        f"({read_share:.0%} of it file reading)" + ("" if value <= 1.3 else f"; missed: {exposure_note}")))
+        f"({read_share:.0%} of it file reading)" + ("" if value <= minmax_target else f"; missed: {exposure_note}")))
     for method in HISTOGRAM_METHODS:
         value = (best["histograms"] + best_range[method]) / best["floor"]
-        miss = "" if value <= 2.0 else (
+        miss = "" if value <= histogram_target else (
             f"; missed: exposure alone {exposure_ratio:.2f}x, and binning costs {binning_ns:.1f} ns per value "
             f"where the model computes a value in {inference_ns:.1f} ns")
         figures.append(Figure(
-            f"calibration / float pass, {method} ({tag})", ratio_text(value), "<= 2.0x", value <= 2.0,
+            f"calibration / float pass, {method} ({tag})", ratio_text(value), f"<= {histogram_target:g}x",
+            value <= histogram_target,
             f"one histogram pass ({best['histograms']:.2f} s, shared by the three methods) + this method's "
             f"range search ({best_range[method] * 1e3:.0f} ms, per tensor, independent of the samples){miss}"))
 
@@ -213,11 +224,12 @@ def data_pass_figures(tag: str, label: str, zm, samples: int, compare_samples: i
     float_ratio, int8_ratio = best["float"] / best["floor"], best["int8"] / best["floor"]
     sums_ratio = max(0.0, value - float_ratio - int8_ratio)
     figures.append(Figure(
-        f"accumulated comparison / float pass ({tag})", ratio_text(value), "<= 2.5x", value <= 2.5,
+        f"accumulated comparison / float pass ({tag})", ratio_text(value), f"<= {compare_target:g}x",
+        value <= compare_target,
         f"{len(compare_data)} samples, {len(layers)} layers: float pass exposing them {float_ratio:.2f}x + "
         f"faithful int8 pass (QDQ fusion off) exposing them {int8_ratio:.2f}x + error sums not hidden behind "
-        f"the passes {sums_ratio:.2f}x" + ("" if value <= 2.5 else "; missed: " + (
-            "the two exposing passes alone exceed the target" if float_ratio + int8_ratio > 2.5 else
+        f"the passes {sums_ratio:.2f}x" + ("" if value <= compare_target else "; missed: " + (
+            "the two exposing passes alone exceed the target" if float_ratio + int8_ratio > compare_target else
             "the error sums (qfit.compare) push it over"))))
     return figures
 
@@ -487,7 +499,7 @@ def arena_zoo_figure() -> Figure:
 
 # ---- main ------------------------------------------------------------------------------------------
 
-FIGURES = ("data", "export", "integer", "rss", "graphs", "order200", "resnet50", "arena")
+FIGURES = ("check", "data", "export", "integer", "rss", "graphs", "order200", "resnet50", "arena")
 
 
 def machine() -> str:
@@ -497,8 +509,8 @@ def machine() -> str:
             cpu = next(line.split(":", 1)[1].strip() for line in f if line.startswith("model name"))
     except (OSError, StopIteration):
         pass
-    return (f"{os.cpu_count()} cores ({cpu}), Python {platform.python_version()}, onnxruntime {ort.__version__}, "
-            f"numpy {np.__version__}")
+    return (f"{os.cpu_count()} cores ({cpu}; SIMD: {check_figures.simd_flags()}), Python "
+            f"{platform.python_version()}, onnxruntime {ort.__version__}, numpy {np.__version__}")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -514,7 +526,12 @@ def main(argv: list[str] | None = None) -> int:
     wanted = args.only or FIGURES
     started = time.perf_counter()
     figures: list[Figure] = []
+    load_at_start = check_figures.load_average()
     with tempfile.TemporaryDirectory(prefix="qfit-bench-") as work:
+        if "check" in wanted:   # issue 15: the whole check as a user runs it
+            figures += check_figures.demo_check_figures(sizes, work, Figure)
+            figures.append(check_figures.ranking_halves_figure(sizes, work, Figure))
+            figures += check_figures.mobilenet_check_figures(sizes, work, Figure, zoo, write_samples)
         if "data" in wanted:
             for tag, label, build, samples, compare_samples in sizes["data_models"]:
                 figures += data_pass_figures(tag, label, build(), samples, compare_samples, sizes, args.threads,
@@ -537,7 +554,9 @@ def main(argv: list[str] | None = None) -> int:
     headers = ["figure", "measured", "target", "met?", "note"]
     print(tabulate(rows, headers=headers, tablefmt="github" if args.markdown else "simple", disable_numparse=True))
     print(f"\n{'smoke run' if args.smoke else 'full run'} on {machine()}; threads "
-          f"{args.threads or 'onnxruntime default'}; {time.perf_counter() - started:.0f} s")
+          f"{args.threads or 'onnxruntime default'}; {time.perf_counter() - started:.0f} s; load average "
+          f"{load_at_start} at the start, {check_figures.load_average()} at the end (1 / 5 / 15 min: a shared "
+          f"machine; ratios are measured in the same run, times interleaved)")
     return 0
 
 

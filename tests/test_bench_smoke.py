@@ -13,6 +13,13 @@ REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 # Row labels (start of the "figure" column) the table must contain.
 EXPECTED_ROWS = [
+    # issue 15: the whole check against a bare float pass, and whether the ranking informs
+    "demo qfit check / bare float pass",
+    "demo qfit check, layer sweep off / bare float pass",
+    "peak RSS of the demo check",
+    "ranking rank correlation, two halves of the demo eval folder",
+    "MobileNetV2 0.35 32, check with the sweep off / bare float pass",
+    "MobileNetV2 0.35 32, peak RSS of the check",
     *(f"calibration / float pass, {method} ({model})"
       for model in ("mobilenet", "resnet") for method in ("min-max", "percentile", "mse", "entropy")),
     "accumulated comparison / float pass (mobilenet)",
@@ -38,4 +45,4 @@ def test_bench_smoke_run_exits_0_and_prints_every_figure():
         assert len(rows) == 1, f"no single row for {label!r} in:\n{done.stdout}"
         cells = rows[0].split("  ")
         assert any(cell.strip() in ("yes", "no", "-") for cell in cells), rows[0]
-    assert "smoke run on" in done.stdout and "onnxruntime" in done.stdout
+    assert "smoke run on" in done.stdout and "onnxruntime" in done.stdout and "SIMD: " in done.stdout
