@@ -85,5 +85,6 @@ def analyze(loaded: LoadedModel, plan: Plan, options: BudgetOptions | None = Non
     if wanted is None:
         wanted = flash["fits"] is False or sram["fits"] is False
     if wanted:
-        result.what_if = whatif.what_if(loaded, plan, options, memory, order, flash, macs["total"])
+        result.what_if = whatif.what_if(loaded, plan, options, memory, order, flash, macs["total"],
+                                         sram_fits=sram["fits"])
     return result

@@ -3,13 +3,18 @@ changes per layer.
 
   resolution  the largest input size (same aspect ratio, a multiple of 8 or 16) whose arena fits,
               found by re-running ONNX shape inference on a copy of the graph at each size;
-  tiling      patch-based execution of the leading high-resolution layers (Lin et al., NeurIPS 2021,
-              "MCUNetV2: Memory-Efficient Patch-based Inference for Tiny Deep Learning"): for n x n
-              tiles and each place the leading layers could stop, the peak SRAM and the extra MACs
-              that the overlapping halos cost, from receptive fields traced back through the
-              kernels, strides, paddings and dilations of the tiled layers;
+  tiling      patch-based execution of the leading high-resolution layers (patch-based inference,
+              Lin et al., NeurIPS 2021): for n x n tiles and each place the leading layers could
+              stop, the peak SRAM and the extra MACs that the overlapping halos cost, from
+              receptive fields traced back through the kernels, strides, paddings and dilations of
+              the tiled layers;
   order       the bytes the best execution order saves over the default one;
-  flash       the layers whose weights dominate, and what changing each one's precision saves/costs.
+  flash       when flash does not fit: the excess, the layers whose weights dominate it and what each
+              would free with 4-bit weights or at half width (estimates), and which layers at 4 bits
+              would remove the excess; for every large layer, what changing its precision saves/costs.
+
+Resolution and tiling are SRAM advice: computed when SRAM does not fit, or when asked for (then
+`sram_fits_already` says the advice is not needed).
 
 The halo formula and the memory model of a tiled stage are in docs/memory.md.
 """
@@ -35,16 +40,19 @@ WHAT_IF_ORDER_TIME_LIMIT_S = 0.25   # order search per re-sized graph: a what-if
 
 
 def what_if(loaded: LoadedModel, plan: Plan, options: BudgetOptions, memory: MemoryModel, order: dict,
-            flash: dict, total_macs: int) -> dict:
-    """All what-if sections for one analysed model (`memory`, `order`, `flash`: its budget figures)."""
-    out = {"sram_limit_bytes": options.sram_limit_bytes, "flash_limit_bytes": options.flash_limit_bytes}
+            flash: dict, total_macs: int, sram_fits: bool | None = None) -> dict:
+    """All what-if sections for one analysed model (`memory`, `order`, `flash`: its budget figures).
+    SRAM advice (resolution, tiling) only when SRAM does not fit or `options.what_if` asks for it."""
+    out = {"sram_limit_bytes": options.sram_limit_bytes, "flash_limit_bytes": options.flash_limit_bytes,
+           "sram_fits_already": sram_fits is True, "flash_fits_already": flash["fits"] is True}
     limit = options.sram_limit_bytes
     out["order"] = {"default_peak_bytes": order["default_peak_bytes"],
                     "best_peak_bytes": order["best_peak_bytes"],
                     "saves_bytes": order["default_peak_bytes"] - order["best_peak_bytes"]}
-    out["resolution"] = resolution_what_if(loaded, plan, options) if limit is not None else None
-    out["tiling"] = tiling_what_if(loaded, plan, options, memory, total_macs)
-    out["flash"] = flash_what_if(flash)
+    sram_advice = sram_fits is not True or options.what_if is True
+    out["resolution"] = resolution_what_if(loaded, plan, options) if limit is not None and sram_advice else None
+    out["tiling"] = tiling_what_if(loaded, plan, options, memory, total_macs) if sram_advice else None
+    out["flash"] = flash_what_if(flash, loaded)
     return out
 
 
@@ -363,9 +371,17 @@ def _stage_peak(memory: MemoryModel, p: int, split: str, regions: dict, shapes: 
 
 # ---- (c) flash ----------------------------------------------------------------------------------
 
-def flash_what_if(flash: dict, top: int = 8) -> dict:
+FLASH_ESTIMATE_NOTE = ("estimates: 4-bit weights lose accuracy (measure the result); a narrower layer changes "
+                       "the model and needs retraining, and a residual partner must narrow with it (not counted)")
+
+
+def flash_what_if(flash: dict, loaded: LoadedModel | None = None, top: int = 8) -> dict:
+    """The largest layers in flash and what changing each would free or cost; when flash does not fit,
+    the excess and the fewest of them whose weights at 4 bits would remove it."""
     rows = []
     weights_total = flash["int8_bytes"] or 1
+    by_name = {layer["name"]: layer for layer in flash["layers"]}
+    readers = _weighted_readers(loaded, by_name) if loaded is not None else {}
     for layer in sorted(flash["layers"], key=lambda r: (-r["total_bytes"], r["name"]))[:top]:
         row = {"name": layer["name"], "op_type": layer["op_type"], "precision": layer["precision"],
                "total_bytes": layer["total_bytes"], "share_pct": round(100.0 * layer["total_bytes"] / weights_total, 1)}
@@ -376,8 +392,66 @@ def flash_what_if(flash: dict, top: int = 8) -> dict:
             row["if_int8_saves_bytes"] = layer["weight_bytes"] // 2
         else:
             row["if_float_costs_bytes"] = max(0, layer["float32_bytes"] - layer["total_bytes"])
+        row["if_4bit_frees_bytes"] = _four_bit_frees(layer)
+        # Half the output channels: this layer's bytes halve, and so do those of the layers reading its
+        # output (their input channels halve).
+        row["if_half_width_frees_bytes"] = (layer["total_bytes"] - layer["other_bytes"]) // 2 + sum(
+            (by_name[r]["total_bytes"] - by_name[r]["other_bytes"]) // 2 for r in readers.get(layer["name"], ()))
         rows.append(row)
     over = None
     if flash["limit_bytes"] is not None:
         over = max(0, flash["total_bytes"] - flash["limit_bytes"])
-    return {"over_limit_bytes": over, "largest_layers": rows}
+    out = {"over_limit_bytes": over, "largest_layers": rows, "estimates": ["if_4bit_frees_bytes",
+                                                                           "if_half_width_frees_bytes"],
+           "estimate_note": FLASH_ESTIMATE_NOTE, "fit_at_4bit": None}
+    if over:
+        out["excess_bytes"] = over
+        out["fit_at_4bit"] = _fewest_at_4bit(flash["layers"], over)
+    return out
+
+
+def _four_bit_frees(layer: dict) -> int:
+    """Bytes freed when this layer's weights are stored at 4 bits (packed two per byte); scales,
+    biases and zero points stay."""
+    if layer["precision"] == "float":
+        return layer["float_bytes"] - layer["float_bytes"] // 8
+    if layer["precision"].startswith("int16"):
+        return layer["weight_bytes"] - layer["weight_bytes"] // 4
+    if layer["precision"].startswith("int4"):
+        return 0
+    return layer["weight_bytes"] - (layer["weight_bytes"] + 1) // 2
+
+
+def _fewest_at_4bit(layers: list[dict], excess_bytes: int) -> dict:
+    """Greedy by bytes freed: the fewest layers whose weights at 4 bits free `excess_bytes`."""
+    chosen, freed = [], 0
+    for layer in sorted(layers, key=lambda r: (-_four_bit_frees(r), r["name"])):
+        if freed >= excess_bytes or _four_bit_frees(layer) <= 0:
+            break
+        chosen.append(layer["name"])
+        freed += _four_bit_frees(layer)
+    return {"layers": chosen, "frees_bytes": freed, "enough": freed >= excess_bytes}
+
+
+def _weighted_readers(loaded: LoadedModel, rows: dict[str, dict]) -> dict[str, list[str]]:
+    """Layer -> the layers with flash rows that read its output, through ops without weights of their
+    own that keep the channel count (activations, pooling, views)."""
+    producers = {out: node for node in loaded.graph.node for out in node.output if out}
+    # layers whose weights scale with the channel count (a Clip's bounds are constants too, but fixed)
+    weighted = {node.name for node in loaded.graph.node if node.name in rows and ops.of(node).weights}
+    readers: dict[str, list[str]] = {}
+    for node in loaded.graph.node:
+        if node.name not in weighted:
+            continue
+        for name in node.input[:1]:  # the data input; weights and biases are constants
+            seen = set()
+            while name in producers and name not in seen:
+                seen.add(name)
+                source = producers[name]
+                if source.name in weighted:
+                    readers.setdefault(source.name, []).append(node.name)
+                    break
+                if len([i for i in source.input if i and i not in loaded.constants]) != 1:
+                    break  # a join (Add, Concat): several producers narrow together, not counted
+                name = next(i for i in source.input if i and i not in loaded.constants)
+    return readers
