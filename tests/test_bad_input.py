@@ -370,7 +370,7 @@ def test_bad_input_corrupt_image_skipped_with_skip_bad_and_counted(tmp_path, cap
     (folder / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really an image")
     code, stdout, stderr, _ = run_qfit(capfd, check_args(model, folder, tmp_path / "out", "--skip-bad"))
     assert code == 0, stderr
-    assert "--skip-bad skipped 1 calibration and 1 evaluation files" in stdout
+    assert "Note: skipped 1 calibration and 1 evaluation files: unreadable (--skip-bad)" in stdout
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     assert report["calibration"]["samples"] == 3
     assert report["calibration"]["skipped"] == 1

@@ -86,6 +86,9 @@ def test_bad_input_process_fifo_in_the_calibration_folder_is_skipped_and_counted
     assert calibration["samples"] == 4 and calibration["skipped"] == 1
     assert calibration["skipped_files"][0]["file"] == "stream.npy"
     assert "not a regular file" in calibration["skipped_files"][0]["reason"]
+    # the summary says why files were skipped without crediting --skip-bad, which was not given
+    assert "Note: skipped 1 calibration and 1 evaluation files: unreadable (--skip-bad) or not regular files" \
+        in run.stdout
 
 
 @pytest.mark.parametrize("flag", ["--labels", "--preprocess"])

@@ -119,8 +119,8 @@ def verdict_section(report: dict) -> Section:
     skipped = {role: (report.get(role) or {}).get("skipped", 0) for role in ("calibration", "evaluation")}
     if any(skipped.values()):
         # a skipped file changes what the figures measure: say so where the user looks
-        lines.append(f"Note: --skip-bad skipped {skipped['calibration']} calibration and "
-                     f"{skipped['evaluation']} evaluation files as unreadable (listed in report.json).")
+        lines.append(f"Note: skipped {skipped['calibration']} calibration and {skipped['evaluation']} evaluation "
+                     f"files: unreadable (--skip-bad) or not regular files (listed in report.json).")
     return Section("verdict", lines, [Table(["", "used", "limit", "margin", "result"], rows)])
 
 
