@@ -16,7 +16,7 @@ def _conv_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     if w is None or y is None:
         return 0
     # y: N, Cout, spatial...; w: Cout, Cin/groups, k...  -> each output element costs Cin/g * prod(k)
-    return element_count(y) * int(np.prod(w[1:]))
+    return element_count(y) * element_count(w[1:])
 
 
 def _conv_transpose_macs(node: NodeProto, shape_of: ShapeOf) -> int:
@@ -25,7 +25,7 @@ def _conv_transpose_macs(node: NodeProto, shape_of: ShapeOf) -> int:
     if w is None or x is None:
         return 0
     # w: Cin, Cout/groups, k...; every input element is scattered into Cout/g * prod(k) outputs
-    return element_count(x) * int(np.prod(w[1:]))
+    return element_count(x) * element_count(w[1:])
 
 
 def _axis0(node: NodeProto, shape) -> int | None:

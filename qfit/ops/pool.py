@@ -2,7 +2,6 @@
 which the loader only evaluates on constants)."""
 from __future__ import annotations
 
-import numpy as np
 from onnx import NodeProto
 
 from qfit.ops.kernels import pool as pool_kernels
@@ -13,7 +12,7 @@ from qfit.sizes import element_count
 
 def _window_ops(node: NodeProto, shape_of: ShapeOf) -> int:
     kernel = attr(node, "kernel_shape", [1])
-    return element_count(shape_of(node.output[0])) * int(np.prod(kernel))
+    return element_count(shape_of(node.output[0])) * element_count(kernel)
 
 
 def _reduce_ops(node: NodeProto, shape_of: ShapeOf) -> int:
