@@ -16,8 +16,8 @@ import re
 import sys
 
 from qfit.errors import QfitError
+from qfit.runtime.sessions import MAX_THREADS
 
-MAX_THREADS = 256      # onnxruntime threads per session; thousands make it deadlock or abort
 MAX_BATCH = 65536      # samples per onnxruntime run; more only multiplies memory
 
 

@@ -25,6 +25,9 @@ FAITHFUL_PATH = ("onnxruntime CPU with QDQ fusion disabled (session.disable_quan
                  "dequantized exactly, products summed in float32, matching 32-bit integer accumulation")
 
 
+MAX_THREADS = 256  # per session; thousands made onnxruntime deadlock or abort (the CLI refuses more)
+
+
 def session_options(faithful: bool, threads: int = 0) -> ort.SessionOptions:
     """onnxruntime options for one session; `threads` = intra-op threads (0 = onnxruntime's default)."""
     so = ort.SessionOptions()
@@ -34,7 +37,7 @@ def session_options(faithful: bool, threads: int = 0) -> ort.SessionOptions:
     # else running on a laptop; they sleep instead.
     so.add_session_config_entry("session.intra_op.allow_spinning", "0")
     if threads and threads > 0:
-        so.intra_op_num_threads = int(threads)
+        so.intra_op_num_threads = min(int(threads), MAX_THREADS)
         so.inter_op_num_threads = 1
     if faithful:
         so.add_session_config_entry("session.disable_quant_qdq", "1")
