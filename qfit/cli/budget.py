@@ -11,7 +11,7 @@ import json
 
 from qfit import files
 from qfit.cli import boundary
-from qfit.cli.main import add_model_and_limits, default_of
+from qfit.cli.arguments import add_model_and_limits, default_of
 from qfit.errors import QfitError
 from qfit.graph.load import parse_input_shapes
 from qfit.memory import budget

@@ -15,7 +15,7 @@ from qfit import files
 from qfit.cli import boundary
 from qfit.cli import export as export_command
 from qfit.check import CheckOptions, check
-from qfit.cli.main import add_model_and_limits, default_of
+from qfit.cli.arguments import add_model_and_limits, default_of
 from qfit.data import Preprocess, load_preprocess, read_class_order
 from qfit.errors import QfitError
 from qfit.graph.load import parse_input_shapes

@@ -1,14 +1,13 @@
 """cli: argparse over the library. `qfit check` runs the whole job (qfit.cli.check); `qfit budget` the
 memory part (qfit.cli.budget).
 
-This module holds what both commands share: the model and limit arguments, the one error and exit
-policy (a user error is one line on stderr and exit 2; an interrupt leaves nothing half-written and
-exits 130) and the signal handlers.
+This module holds what every command shares at run time: the parser, the one error and exit policy (a
+user error is one line on stderr and exit 2; an interrupt leaves nothing half-written and exits 130)
+and the signal handlers; qfit.cli.arguments the arguments they share.
 """
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import signal
 import sys
 
@@ -19,14 +18,29 @@ from qfit.errors import QfitError
 EXIT_OK, EXIT_FAIL, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
+def default_text(action: argparse.Action) -> str | None:
+    """An option's default as --help and docs/cli.md state it (`required`, `off` for a switch, `none`
+    when unset); None for positionals, -h and --version."""
+    if not action.option_strings or action.default is argparse.SUPPRESS:
+        return None
+    if action.required:
+        return "required"
+    if isinstance(action, argparse._StoreTrueAction):
+        return "off"
+    if action.default is None:
+        return "none"
+    return str(action.default)
+
+
 class _HelpFormatter(argparse.HelpFormatter):
-    """--help names each option's default (the library's own, see `default_of`), unless it has none."""
+    """--help names each option's default (the library's own, see `default_of`), unless its help
+    already words it."""
 
     def _get_help_string(self, action):
         text = action.help or ""
-        if ("default" not in text and action.option_strings and action.default is not None
-                and action.default is not False and action.default is not argparse.SUPPRESS):
-            text += " (default: %(default)s)"
+        default = default_text(action)
+        if default is not None and "default" not in text:
+            text += f" (default: {default.replace('%', '%%')})"  # help strings are %-formatted
         return text
 
 
@@ -39,21 +53,6 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message):
         raise QfitError(f"{self.prog}: {message}")
-
-
-def default_of(options_class, name: str):
-    """The default of one field of an options dataclass: the CLI shows and uses the library's own."""
-    return {f.name: f.default for f in dataclasses.fields(options_class)}[name]
-
-
-def add_model_and_limits(p: argparse.ArgumentParser, model_help: str) -> None:
-    """The arguments every command takes: the model, the two limits, the reserve, fixed input shapes."""
-    p.add_argument("model", help=model_help)
-    p.add_argument("--flash", required=True, help="flash available for the model, e.g. 1MiB")
-    p.add_argument("--sram", required=True, help="SRAM available for activations, e.g. 256KiB")
-    p.add_argument("--flash-reserve", default="0", help="flash kept for code and runtime (estimate)")
-    p.add_argument("--input-shape", action="append", metavar="NAME=1x3x96x96",
-                   help="fix the dimensions of an input (repeatable)")
 
 
 def _commands() -> dict:
