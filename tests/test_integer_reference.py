@@ -77,3 +77,37 @@ def test_single_rounding_within_one_step_of_onnx_reference_on_every_zoo_model(na
     assert within / total >= 0.999, (name, within, total)
     # the integer path runs every quantized node in integers (the zoo's float nodes are unsupported ops)
     assert program.integer_nodes
+
+
+def quantized_with_int16(model: onnx.ModelProto, every: int = 3, samples: int = 8) -> tuple[onnx.ModelProto, list]:
+    """qfit's QDQ model with every `every`-th calibrated tensor at 16-bit activations (as a repair sets)."""
+    loaded = prepare_model(model)
+    first = make_plan(loaded, PlanOptions())
+    wide = {t: 16 for t in first.calibrated_tensors()[1::every]}
+    plan = make_plan(loaded, PlanOptions(activation_bits=wide))
+    tensors = plan.calibrated_tensors()
+    runner = Runner(loaded.model, tensors, batch_size=1)
+    stats = {t: TensorStats(t) for t in tensors}
+    batch = random_batch(model, samples, 0)
+    for i in range(samples):
+        values = runner({k: v[i:i + 1] for k, v in batch.items()})
+        for t in stats:
+            stats[t].update(values[t])
+    return build_qdq(loaded, plan, calibrated_ranges(plan, stats, "minmax", 99.99)).model, sorted(wide)
+
+
+@pytest.mark.parametrize("name", ["resnet_small", "mobilenet_v2_small", "concat_branches"])
+def test_single_rounding_with_int16_activations_within_one_step_of_onnx_reference(name):
+    # Source: the ONNX operator spec (onnx.reference). 16-bit activations take the wide paths: exact
+    # sums split into digits when they exceed float32's 2^24, Add's left shift 15, 65536-entry tables.
+    model, wide = quantized_with_int16(zoo.ZOO[name]().model)
+    assert wide
+    feeds = random_batch(model, 1, 1)
+    program, ours = integer_tensors(model, "single", feeds)
+    theirs = forced_reference(model, feeds, ours)
+    diffs = [np.abs(ours[t].astype(np.int64) - v.astype(np.int64)) for t, v in theirs.items()]
+    total, within = sum(d.size for d in diffs), sum(int(np.sum(d <= 1)) for d in diffs)
+    assert within / total >= 0.999
+    assert program.float_nodes == []
+    sixteen = [t for t, grid in program.quantizers.items() if grid.high == 32767]
+    assert sixteen
