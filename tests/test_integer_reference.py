@@ -24,14 +24,19 @@ from qfit.quant.quantize import build_qdq, calibrated_ranges
 from qfit.runtime.sessions import Runner
 
 
-def quantized_model(model: onnx.ModelProto, samples: int = 8, seed: int = 0) -> onnx.ModelProto:
-    """qfit's QDQ model of `model`, min-max ranges from `samples` seeded normal inputs."""
+def quantized_model(model: onnx.ModelProto, samples: int = 8, seed: int = 0, low: float | None = None,
+                    high: float | None = None) -> onnx.ModelProto:
+    """qfit's QDQ model of `model`, min-max ranges from `samples` seeded normal inputs (uniform in
+    [low, high] when both are given)."""
     loaded = prepare_model(model)
     plan = make_plan(loaded, PlanOptions())
     tensors = plan.calibrated_tensors()
     runner = Runner(loaded.model, tensors, batch_size=1)
     stats = {t: TensorStats(t) for t in tensors}
     batch = random_batch(model, samples, seed)
+    if low is not None and high is not None:
+        rng = np.random.default_rng(seed)
+        batch = {k: rng.uniform(low, high, v.shape).astype(np.float32) for k, v in batch.items()}
     for i in range(samples):
         values = runner({k: v[i:i + 1] for k, v in batch.items()})
         for t in stats:
