@@ -75,16 +75,13 @@ class Runner:
 
     Batches larger than 1 run through a batch-free copy of the model when that copy produces the
     right shapes (a model that hard-codes its batch in a Reshape does not); otherwise sample by sample.
-    `unbatched` names graph inputs fed the same value for the whole batch (qfit.measure.sensitivity's
-    boolean switches); they are passed to each call as `constants`.
     """
 
     def __init__(self, model: onnx.ModelProto, outputs: list[str], faithful: bool = False,
-                 batch_size: int = 16, threads: int = 0, unbatched: tuple[str, ...] | list[str] = ()):
+                 batch_size: int = 16, threads: int = 0):
         self.outputs = list(outputs)
         self.faithful = faithful
         self.threads = threads
-        self.unbatched = tuple(unbatched)
         self._extended = with_outputs(model, self.outputs)
         self._session = None
         self.batched = None
@@ -113,43 +110,31 @@ class Runner:
             self._session = self._fixed_session()
         return self._session
 
-    def _probe_constants(self) -> dict[str, np.ndarray]:
-        values = {}
-        for inp in self._extended.graph.input:
-            if inp.name in self.unbatched:
-                dtype = onnx.helper.tensor_dtype_to_np_dtype(inp.type.tensor_type.elem_type)
-                values[inp.name] = np.zeros([d.dim_value for d in inp.type.tensor_type.shape.dim], dtype)
-        return values
-
     def _batch_works(self, session: ort.InferenceSession) -> bool:
         # Batch 2 must give batch-2 outputs with the per-sample shapes of batch 1 (a model that
         # hard-codes its batch in a Reshape does not). The model's own input shapes give the
         # per-sample shapes, so the fixed-shape session is not needed for this check.
         feeds = {}
-        constants = {i.name for i in self._extended.graph.initializer} | set(self.unbatched)
+        constants = {i.name for i in self._extended.graph.initializer}
         for inp in self._extended.graph.input:
             if inp.name in constants:
                 continue
             dims = inp.type.tensor_type.shape.dim
             shape = [d.dim_value if d.HasField("dim_value") else 1 for d in dims]
             feeds[inp.name] = np.zeros([2] + shape[1:], np.float32)
-        fixed = self._probe_constants()
         try:
-            got = session.run(self.outputs, {**feeds, **fixed})
-            single = session.run(self.outputs, {**{k: v[:1] for k, v in feeds.items()}, **fixed})
+            got = session.run(self.outputs, feeds)
+            single = session.run(self.outputs, {k: v[:1] for k, v in feeds.items()})
         except ORT_ERRORS:  # any failure of the probe means: do not batch
             return False
         return all(g.shape[:1] == (2,) and g.shape[1:] == s.shape[1:] and s.shape[:1] == (1,)
                    for g, s in zip(got, single))
 
-    def __call__(self, inputs: dict[str, np.ndarray],
-                 constants: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
-        constants = constants or {}
+    def __call__(self, inputs: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         n = next(iter(inputs.values())).shape[0]
         if n == 1 or self.batched is not None:
             session = self.session if n == 1 else self.batched
-            values = session.run(self.outputs, {**inputs, **constants})
+            values = session.run(self.outputs, inputs)
             return dict(zip(self.outputs, values))
-        parts = [self.session.run(self.outputs, {**{k: v[i:i + 1] for k, v in inputs.items()}, **constants})
-                 for i in range(n)]
+        parts = [self.session.run(self.outputs, {k: v[i:i + 1] for k, v in inputs.items()}) for i in range(n)]
         return {name: np.concatenate([p[j] for p in parts], axis=0) for j, name in enumerate(self.outputs)}
