@@ -39,7 +39,9 @@ class _HelpFormatter(argparse.HelpFormatter):
     def _get_help_string(self, action):
         text = action.help or ""
         default = default_text(action)
-        if default is not None and "default" not in text:
+        if default == "required":
+            text += " (required)"
+        elif default is not None and "default" not in text:
             text += f" (default: {default.replace('%', '%%')})"  # help strings are %-formatted
         return text
 
