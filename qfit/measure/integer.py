@@ -70,8 +70,8 @@ class FixedPointArithmetic:
     def multiply(self, acc, m0, shift):
         return fixed_point.multiply(acc, m0, shift, self.rounding)
 
-    def requantizer(self, m0, shift, zero_point, low, high, bias=None):
-        return fixed_point.Requantizer(m0, shift, zero_point, self.rounding, low, high, bias)
+    def requantizer(self, m0, shift, zero_point, low, high, bias=None, acc_bound=None):
+        return fixed_point.Requantizer(m0, shift, zero_point, self.rounding, low, high, bias, acc_bound)
 
     def overflow(self, node: NodeProto, count: int) -> None:
         self.overflows[node.name] = self.overflows.get(node.name, 0) + int(count)
@@ -336,7 +336,9 @@ def _dequantize(q: np.ndarray, grid: Grid) -> np.ndarray:
         shape = [1] * q.ndim
         shape[grid.axis % q.ndim] = -1
         scale, zero = scale.reshape(shape), zero.reshape(shape)
-    return ((q.astype(np.int64) - zero).astype(np.float32) * scale.astype(np.float32)).astype(np.float32)
+    out = np.subtract(q, zero, dtype=np.float32)   # exact: |q - z| < 2^24
+    out *= scale.astype(np.float32)
+    return out
 
 
 def _quantize(x: np.ndarray, grid: Grid) -> np.ndarray:

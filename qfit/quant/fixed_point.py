@@ -166,7 +166,8 @@ class Requantizer:
 
     BLOCK_VALUES = 1 << 16  # values per block: the int64 temporaries stay in the CPU cache
 
-    def __init__(self, m0, shift, zero_point, rounding: str, low: int, high: int, bias=None):
+    def __init__(self, m0, shift, zero_point, rounding: str, low: int, high: int, bias=None,
+                 acc_bound: int | None = None):
         if rounding not in _MULTIPLY:
             raise ValueError(f"unknown rounding '{rounding}' (choose from {', '.join(ROUNDINGS)})")
         self.m0 = np.asarray(m0, dtype=np.int64)
@@ -194,6 +195,12 @@ class Requantizer:
         self.high_centred = self.high - self.zero_point
         self.threshold, self.offset, self.right = (np.asarray(v, np.int64) for v in
                                                    (self.threshold, self.offset, self.right))
+        # Double rounding with |acc + bias| < 2^30 known: h = floor((x + K) / 2^31) fits int32 and the
+        # sign test x >= T is h >= 2^(r-1) - 1 (T + K = (2^(r-1) - 1) 2^31), so the tail runs in int32.
+        self.narrow = bool(rounding == "double" and self.fast and acc_bound is not None and acc_bound < (1 << 30)
+                           and np.all(self.right <= 30) and max(abs(self.low), abs(self.high)) < (1 << 30))
+        self.half_minus_one = np.where(self.right > 0, ((np.int64(1) << self.right) >> 1) - 1,
+                                       INT32_MAX).astype(np.int32)
         self._by_rank: dict[int, list[np.ndarray]] = {}
 
     def __call__(self, acc: np.ndarray) -> np.ndarray:
@@ -224,11 +231,18 @@ class Requantizer:
             inner *= shape[axis]
             axis -= 1
         step = max(1, self.BLOCK_VALUES // inner)
-        for prefix in np.ndindex(*shape[:axis]):
-            for start in range(0, shape[axis], step):
-                index = prefix + (slice(start, start + step),)
-                self._block(acc[index], out_view[index], [c[_constant_index(c, prefix, index[-1])]
+        blocks = [prefix + (slice(start, start + step),) for prefix in np.ndindex(*shape[:axis])
+                  for start in range(0, shape[axis], step)]
+
+        def run(indices):
+            for index in indices:
+                self._block(acc[index], out_view[index], [c[_constant_index(c, index[:-1], index[-1])]
                                                           for c in constants])
+
+        if len(blocks) < 4:
+            run(blocks)
+        else:  # numpy releases the GIL inside each operation: two threads share the blocks
+            list(_pool().map(run, (blocks[0::2], blocks[1::2])))
         return out
 
     def _constants(self, ndim: int) -> list[np.ndarray]:
@@ -236,12 +250,22 @@ class Requantizer:
         if ndim not in self._by_rank:
             self._by_rank[ndim] = [c.reshape((1,) * (ndim - c.ndim) + c.shape) if c.ndim <= ndim else c
                                    for c in (self.m0, self.threshold, self.offset, self.right,
-                                             self.low_centred, self.high_centred, self.zero_point)]
+                                             self.low_centred, self.high_centred, self.zero_point,
+                                             self.half_minus_one, self.right.astype(np.int32))]
         return self._by_rank[ndim]
 
     def _block(self, acc: np.ndarray, out: np.ndarray, constants: list[np.ndarray]) -> np.ndarray:
-        m0, threshold, offset, right, low, high, zero_point = constants
+        m0, threshold, offset, right, low, high, zero_point, half_minus_one, right32 = constants
         x = np.multiply(acc, m0, dtype=np.int64, casting="unsafe")
+        if self.narrow:
+            x += offset
+            x >>= 31
+            h = x.astype(np.int32)
+            h += h >= half_minus_one
+            h >>= right32
+            np.clip(h, low, high, out=h)
+            np.add(h, zero_point, out=out, casting="unsafe")
+            return out
         rounds_up = x >= threshold
         x += offset
         if self.rounding == "double":
@@ -251,6 +275,17 @@ class Requantizer:
         np.clip(x, low, high, out=x)
         np.add(x, zero_point, out=out, casting="unsafe")
         return out
+
+
+_POOL: list = []
+
+
+def _pool():
+    """A two-thread pool for the requantizer's blocks, started on first use."""
+    if not _POOL:
+        from concurrent.futures import ThreadPoolExecutor
+        _POOL.append(ThreadPoolExecutor(max_workers=2, thread_name_prefix="qfit-requantize"))
+    return _POOL[0]
 
 
 def _constant_index(constant: np.ndarray, prefix: tuple, block: slice) -> tuple:

@@ -78,9 +78,11 @@ class Arithmetic(Protocol):
     def multiply(self, acc: np.ndarray, m0, shift) -> np.ndarray:
         """acc * M0 * 2^(shift - 31) in the selected rounding, int64."""
 
-    def requantizer(self, m0, shift, zero_point, low: int, high: int, bias=None) -> Callable[[np.ndarray], np.ndarray]:
+    def requantizer(self, m0, shift, zero_point, low: int, high: int, bias=None,
+                    acc_bound: int | None = None) -> Callable[[np.ndarray], np.ndarray]:
         """A prepared accumulator -> output integers function (bias, scale, zero point, clamp); the
-        accumulator may be a float array of exact integers."""
+        accumulator may be a float array of exact integers; `acc_bound`, when known, bounds
+        |accumulator + bias| (a narrower, faster path below 2^30)."""
 
     def compile(self, node: NodeProto, constants: dict[int, np.ndarray]) -> Callable[[list], list]:
         """Run `node` in float32 with the inputs in `constants` fixed; the callable takes the other

@@ -69,14 +69,16 @@ def build_conv(node: NodeProto, operands: list[Operand], outputs, arithmetic: Ar
     b = integer_bias(bias, acc_scale, channels)
     weight_abs_sum = int(np.abs(centred_w).reshape(channels, -1).sum(axis=1).max()) if centred_w.size else 0
     max_abs = x.grid.max_abs_centred()
-    may_overflow = max_abs * weight_abs_sum + int(np.abs(b).max(initial=0)) >= INT32_LIMIT
+    acc_bound = max_abs * weight_abs_sum + int(np.abs(b).max(initial=0))
+    may_overflow = acc_bound >= INT32_LIMIT
     m0, shift = arithmetic.multipliers(acc_scale / out.s)
     spatial = w.value.ndim - 2
     per_channel = channel_shape(2 + spatial, 1, channels)
     bias_b = b.reshape(per_channel)
     # without a possible overflow the bias folds into the requantizer's constants (one pass less)
     requantize = arithmetic.requantizer(m0.reshape(per_channel), shift.reshape(per_channel), out.z,
-                                        out.low, out.high, bias=None if may_overflow else bias_b)
+                                        out.low, out.high, bias=None if may_overflow else bias_b,
+                                        acc_bound=None if may_overflow else acc_bound)
     sums_node = helper.make_node("Conv", [node.input[0], node.input[1]], [node.output[0]], name=node.name)
     sums_node.attribute.extend(node.attribute)
     run_float = arithmetic.compile(sums_node, {1: centred_w.astype(np.float32)})

@@ -56,14 +56,18 @@ def build_add(node: NodeProto, operands: list[Operand], outputs, arithmetic: Ari
             continue
         m0, shift = arithmetic.multipliers(op.grid.s / twice_max)
         # (x - z) << L times a factor <= 1/2 stays inside int32: the rescale cannot saturate
-        rescale = arithmetic.requantizer(m0, shift, 0, -INT32_LIMIT, INT32_LIMIT - 1)
+        rescale = arithmetic.requantizer(m0, shift, 0, -INT32_LIMIT, INT32_LIMIT - 1,
+                                         acc_bound=op.grid.max_abs_centred() << left)
         fixed, zero = _integer_term(op)
         if fixed is not None:
             fixed = factor * rescale(fixed << left).astype(np.int64)
         terms.append((fixed, rescale, zero, factor))
         records[f"input{i}_multiplier"], records[f"input{i}_shift"] = int(m0), int(shift)
     m0, shift = arithmetic.multipliers(common / out.s)
-    requantize = arithmetic.requantizer(m0, shift, out.z, out.low, out.high)
+    # each rescaled input is at most max|x - z| 2^L / 2 (its factor is <= 1/2); a constant as it is
+    acc_bound = sum(int(np.abs(t[0]).max(initial=0)) if t[1] is None else
+                    (operands[i].grid.max_abs_centred() << left) // 2 + 1 for i, t in enumerate(terms))
+    requantize = arithmetic.requantizer(m0, shift, out.z, out.low, out.high, acc_bound=acc_bound)
 
     def run(values):
         acc = None
