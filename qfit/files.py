@@ -184,16 +184,15 @@ def read_regular_file(path: str, max_bytes: int, where: str) -> bytes:
         fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
     except FileNotFoundError:
         raise QfitError(f"{where}: no such file") from None
-    except IsADirectoryError:
-        raise QfitError(f"{where}: is a directory, not a file") from None
     except OSError as e:
         raise QfitError(f"{where}: cannot read ({e.strerror or e})") from None
-    with os.fdopen(fd, "rb") as f:
-        mode = os.fstat(f.fileno()).st_mode
+    mode = os.fstat(fd).st_mode  # checked before wrapping: a folder cannot even be wrapped for reading
+    if not stat.S_ISREG(mode):
+        os.close(fd)
         if stat.S_ISDIR(mode):
             raise QfitError(f"{where}: is a directory, not a file")
-        if not stat.S_ISREG(mode):
-            raise QfitError(f"{where}: not a regular file (a FIFO, device or socket); give a file")
+        raise QfitError(f"{where}: not a regular file (a FIFO, device or socket); give a file")
+    with os.fdopen(fd, "rb") as f:
         try:
             data = f.read(max_bytes + 1)
         except OSError as e:

@@ -413,3 +413,10 @@ def test_bad_input_missing_model_with_a_non_utf8_name_is_one_readable_line(tmp_p
     message = assert_refused(capfd, check_args(missing, calib, tmp_path / "out"), tmp_path / "out",
                              "no such file")
     assert "gone\\xff.onnx" in message
+
+
+@pytest.mark.parametrize("flag, what", [("--labels", "labels CSV"), ("--preprocess", "preprocess file")])
+def test_bad_input_small_input_file_is_a_folder(tmp_path, capfd, model, calib, flag, what):
+    extra = [flag, calib] + (["--eval", calib] if flag == "--labels" else [])
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *extra), tmp_path / "out",
+                   f"{what} {calib}: is a directory, not a file")
