@@ -155,3 +155,25 @@ def test_prepared_requantizer_equals_requantize_with_bias_and_per_channel_consta
     small = fp.Requantizer(m0[:1], shift[:1], 3, rounding, -128, 127)   # a per-tensor factor < 1
     acc1 = rng.integers(-(1 << 30), 1 << 30, 10_000)
     assert np.array_equal(small(acc1), fp.requantize(acc1, m0[:1], shift[:1], 3, rounding))
+
+
+def test_prepared_double_rounding_with_a_known_accumulator_bound_takes_the_int32_tail_and_agrees():
+    # |acc + bias| < 2^30 lets the tail run in int32; it must give the plain definition's integers,
+    # ties included (factors 2^-k M0 with M0 = 2^30 put many products exactly on the ties).
+    rng = np.random.default_rng(12)
+    for m0 in (1 << 30, (1 << 30) + 1, (1 << 31) - 1, 3 << 29):
+        for shift in range(-30, 1):
+            acc = np.arange(-6000, 6000)
+            fast = fp.Requantizer(m0, shift, 0, "double", -(1 << 20), 1 << 20, bias=np.int64(7), acc_bound=6100)
+            assert fast.narrow
+            assert np.array_equal(fast(acc), fp.requantize(acc + 7, m0, shift, 0, "double", -(1 << 20), 1 << 20))
+    reals = np.exp2(rng.uniform(-31, -0.1, 5))
+    m0s, shifts = fp.quantize_multipliers(reals)
+    shape = (1, 5, 1, 1)
+    acc = rng.integers(-(1 << 29), 1 << 29, (2, 5, 6, 7))
+    bias = rng.integers(-(1 << 20), 1 << 20, shape)
+    fast = fp.Requantizer(m0s.reshape(shape), shifts.reshape(shape), 3, "double", -128, 127, bias=bias,
+                          acc_bound=(1 << 29) + (1 << 20))
+    assert fast.narrow
+    assert np.array_equal(fast(acc), fp.requantize(acc + bias, m0s.reshape(shape), shifts.reshape(shape), 3,
+                                                   "double", -128, 127))
