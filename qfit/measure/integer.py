@@ -177,50 +177,21 @@ class IntegerProgram:
             value = ops.of(node).constant_value(node) if ops.of(node).constant_value else None
             if value is not None:
                 inits[node.output[0]] = value
-        try:
-            inferred = onnx.shape_inference.infer_shapes(model)
-            infos = list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output)
-        except Exception:  # shapes only refine the records; types default to float
-            infos = list(graph.input) + list(graph.output)
-        self.elem_types = {vi.name: vi.type.tensor_type.elem_type for vi in infos}
-        self.shapes = {vi.name: tuple(d.dim_value for d in vi.type.tensor_type.shape.dim)
-                       for vi in infos if vi.type.tensor_type.HasField("shape")
-                       and all(d.HasField("dim_value") for d in vi.type.tensor_type.shape.dim)}
-        producer = {o: n for n in graph.node for o in n.output}
-        consumers: dict[str, list[NodeProto]] = {}
-        for node in graph.node:
-            for name in node.input:
-                consumers.setdefault(name, []).append(node)
-        graph_outputs = {o.name for o in graph.output}
+        self._read_types_and_shapes(model)
         self.quantizers: dict[str, Grid] = {}       # Q output -> grid
         self.dequantized: dict[str, str] = {}       # activation DQ output -> Q output
-        integer_constants: dict[str, Operand] = {}  # DQ of a constant -> its integers and grid
-        float_constants: dict[str, np.ndarray] = dict(inits)
-        for node in graph.node:
-            if node.op_type == "QuantizeLinear":
-                grid = _grid_of(node, inits, None)
-                if grid is not None and node.input[0] not in inits:
-                    self.quantizers[node.output[0]] = grid
-        for node in graph.node:
-            if node.op_type != "DequantizeLinear":
-                continue
-            source = node.input[0]
-            if source in inits:
-                values = inits[source]
-                grid = _grid_of(node, inits, helper.np_dtype_to_tensor_dtype(values.dtype))
-                if grid is not None:
-                    integer_constants[node.output[0]] = Operand("integer_constant", grid, values.astype(np.int64))
-                    float_constants[node.output[0]] = _dequantize(values, grid)
-            elif source in self.quantizers:
-                q = producer[source]
-                dq_grid = _grid_of(node, inits, None)
-                if dq_grid is not None and dq_grid.same_as(self.quantizers[source]):
-                    self.dequantized[node.output[0]] = source
+        integer_constants = self._read_quantizers(graph, inits)   # DQ of a constant -> integers and grid
+        float_constants = {**inits, **{name: _dequantize(op.value, op.grid) for name, op in integer_constants.items()}}
         self.steps: list[_Step] = []
         self.requantization: dict[str, dict] = {}
         self.integer_nodes: list[str] = []
         self.float_nodes: list[str] = []
         self.pre_quantizer: dict[str, str] = {}   # float name of an integer step's output -> its Q output
+        consumers: dict[str, list[NodeProto]] = {}
+        for node in graph.node:
+            for name in node.input:
+                consumers.setdefault(name, []).append(node)
+        graph_outputs = {o.name for o in graph.output}
         produced, absorbed = set(), set()
         for node in graph.node:
             if node.output and node.output[0] in inits or id(node) in absorbed:
@@ -242,8 +213,43 @@ class IntegerProgram:
                     self.requantization[node.name] = step.prepared.requantization
                 continue
             self.steps.append(self._float_step(node, float_constants))
-            if node.op_type not in ("QuantizeLinear", "DequantizeLinear"):
+            if not ops.is_qdq(node):
                 self.float_nodes.append(node.name)
+
+    def _read_types_and_shapes(self, model: onnx.ModelProto) -> None:
+        try:
+            inferred = onnx.shape_inference.infer_shapes(model)
+            infos = list(inferred.graph.value_info) + list(inferred.graph.input) + list(inferred.graph.output)
+        except Exception:  # shapes only refine the records; types default to float
+            infos = list(model.graph.input) + list(model.graph.output)
+        self.elem_types = {vi.name: vi.type.tensor_type.elem_type for vi in infos}
+        self.shapes = {vi.name: tuple(d.dim_value for d in vi.type.tensor_type.shape.dim)
+                       for vi in infos if vi.type.tensor_type.HasField("shape")
+                       and all(d.HasField("dim_value") for d in vi.type.tensor_type.shape.dim)}
+
+    def _read_quantizers(self, graph, inits: dict) -> dict[str, Operand]:
+        """Fill `quantizers` (activation Q outputs) and `dequantized` (their DQ readers); return the
+        integer constants read through a DequantizeLinear (int8 weights, int32 biases)."""
+        integer_constants: dict[str, Operand] = {}
+        for node in graph.node:
+            if node.op_type == "QuantizeLinear":
+                grid = _grid_of(node, inits, None)
+                if grid is not None and node.input[0] not in inits:
+                    self.quantizers[node.output[0]] = grid
+        for node in graph.node:
+            if node.op_type != "DequantizeLinear":
+                continue
+            source = node.input[0]
+            if source in inits:
+                values = inits[source]
+                grid = _grid_of(node, inits, helper.np_dtype_to_tensor_dtype(values.dtype))
+                if grid is not None:
+                    integer_constants[node.output[0]] = Operand("integer_constant", grid, values.astype(np.int64))
+            elif source in self.quantizers:
+                dq_grid = _grid_of(node, inits, None)
+                if dq_grid is not None and dq_grid.same_as(self.quantizers[source]):
+                    self.dequantized[node.output[0]] = source
+        return integer_constants
 
     def _integer_step(self, node, consumers, graph_outputs, inits, integer_constants, absorbed) -> _Step | None:
         builder = kernel_for(node.op_type)
