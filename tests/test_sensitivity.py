@@ -185,31 +185,38 @@ def test_switch_model_with_every_switch_on_is_the_int8_model_and_off_the_float_m
     assert len(switch.layer_switches["conv1"]) == 3 and len(switch.layer_switches["conv2"]) == 2
 
 
-def test_sweep_model_computes_each_configuration_as_the_switch_model_defines_it():
-    # The sweep model runs each configuration as a plain model cut at the layer's first quantizer;
-    # the switch model with the same switches fed is the definition it must reproduce.
+@pytest.mark.parametrize("group_nodes", [1, 10_000], ids=["a_group_per_layer", "one_group"])
+def test_sweep_models_compute_each_configuration_as_the_switch_model_defines_it(monkeypatch, group_nodes):
+    # The sweep runs each configuration as a plain model cut at the layer's first quantizer, in groups
+    # that hand the float and int8 tensors on; the switch model with the same switches fed is the
+    # definition it must reproduce.
+    monkeypatch.setattr(sensitivity, "GROUP_NODES", group_nodes)
     rng = np.random.default_rng(4)
     xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(4)]
     loaded, plan, quantized = _quantized(_conv_chain(), xs)
     layers = compared_layers(loaded, plan)
     switch = sensitivity.build_switch_model(loaded, plan, quantized, layers)
     rows = [r for r in layers if switch.layer_switches.get(r["name"])]
-    parts, wanted = sensitivity.sweep_parts(switch, rows, "y")
-    model, names = sensitivity.sweep_graph(switch, parts, wanted, {})
-    where = dict(zip(wanted, names))
-    runner = Runner(model, sorted(set(names)), faithful=True, batch_size=1)
+    groups = sensitivity.sweep_groups(switch, rows, "y", sensitivity._tensor_types(switch.model))
+    assert len(groups) == (2 if group_nodes == 1 else 1)
     cuts = sensitivity.find_cuts(switch, [r["name"] for r in rows])
     assert cuts.start_of["conv1"] == 0 < cuts.start_of["conv2"]   # conv2 runs from its own quantizers on
     everything = set(switch.switches)
     for x in xs:
-        got = runner({"x": x})
-        assert np.array_equal(got[where[("int8", "y")]], _switch_model_run(switch, x, everything))
-        for k, row in enumerate(rows):
-            mine = set(switch.layer_switches[row["name"]])
-            np.testing.assert_allclose(got[where[(f"alone{k}", "y")]], _switch_model_run(switch, x, mine),
-                                       rtol=1e-5, atol=1e-6)
-            np.testing.assert_allclose(got[where[(f"kept{k}", "y")]], _switch_model_run(switch, x, everything - mine),
-                                       rtol=1e-5, atol=1e-6)
+        got = {"float@x": x, "int8@x": x}
+        for group in groups:
+            names = [o.name for o in group.model.graph.output]
+            got.update(Runner(group.model, names, faithful=True, batch_size=1)(
+                {i.name: got[i.name] for i in group.model.graph.input}))
+            for k in group.rows:
+                mine = set(switch.layer_switches[rows[k]["name"]])
+                np.testing.assert_allclose(got[group.names[(f"alone{k}", "y")]], _switch_model_run(switch, x, mine),
+                                           rtol=1e-5, atol=1e-6)
+                np.testing.assert_allclose(got[group.names[(f"kept{k}", "y")]],
+                                           _switch_model_run(switch, x, everything - mine), rtol=1e-5, atol=1e-6)
+            got.update({f"{tag}@{name}": got[group.names[(tag, name)]] for name in group.state_out
+                        for tag in ("float", "int8")})
+        assert np.array_equal(got[groups[-1].names[("int8", "y")]], _switch_model_run(switch, x, everything))
 
 
 def _exact_two_sided_sign_test(worse: int, better: int) -> Fraction:

@@ -157,8 +157,10 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
 # the chosen value; Q/DQ nodes nobody reads are pruned), and only from the first node its layer's
 # quantizers touch (its *start*): everything before is the float model's (only this layer int8) or
 # the int8 model's (only this layer float), so it reads those tensors from the float and the int8
-# model computed alongside. All of it is one *sweep model* (each part's names prefixed), one
-# onnxruntime session, one run per batch: memory is one batch's.
+# model computed alongside. The configurations of neighbouring layers and that stretch of the float
+# and int8 models form one *sweep model* (each part's names prefixed), one onnxruntime session; a
+# batch runs through the sweep models in turn, each handing the float and int8 tensors crossing into
+# the next group on: memory is one batch's.
 
 def _fixed_nodes(switch: SwitchModel, on: set[str]) -> list[onnx.NodeProto]:
     """The switch model's nodes with every switch fixed: Where(s, quantized, float) -> Identity."""
@@ -192,27 +194,33 @@ class Part:
 
     tag: str
     nodes: list[onnx.NodeProto]   # its switch-model nodes, switches fixed, pruned to what it needs
-    source: str | None            # tag of the part whose tensors it reads at its start (None: graph inputs)
+    source: str | None            # tag of the part whose tensors it reads at its start (None: fed as inputs)
     reads: set[str]               # the switch-model names it reads from there
 
 
 def sweep_graph(switch: SwitchModel, parts: list[Part], wanted: list[tuple[str, str]],
-                elem_types: dict[str, int]) -> tuple[onnx.ModelProto, list[str]]:
-    """One model computing every part side by side, and the graph output name of each (tag, name) in
-    `wanted` (a name a part reads rather than computes is its source's). `elem_types`: ONNX element
-    types of the switch-model tensors that are not float."""
+                tensor_types: dict[str, tuple[int, list]]) -> tuple[onnx.ModelProto, list[str]]:
+    """One model computing every part side by side, and the name of each (tag, name) in `wanted` in
+    it. A part with no source (the float or int8 model) reads its `reads` as graph inputs named
+    `tag@name`; a name a part reads rather than computes is its source's. A wanted name that is such
+    an input is not a graph output (the caller has it). `tensor_types`: switch-model tensor ->
+    (ONNX element type, shape) from shape inference."""
     graph = switch.model.graph
     made = {part.tag: {o for n in part.nodes for o in n.output if o} for part in parts}
     by_tag = {part.tag: part for part in parts}
+    inputs: dict[str, str] = {}   # graph input -> the switch-model tensor it carries
 
-    def name_in(tag: str | None, name: str) -> str:
+    def name_in(tag: str, name: str) -> str:
         """The sweep-model name of switch-model tensor `name` as part `tag` sees it."""
-        if tag is None or not name:
-            return name
-        if name in made[tag]:
-            return f"{tag}/{name}"
         part = by_tag[tag]
-        return name_in(part.source, name) if name in part.reads else name   # else an initializer
+        if not name or name in made[tag]:
+            return f"{tag}/{name}" if name else name
+        if name not in part.reads:
+            return name                                   # an initializer
+        if part.source is not None:
+            return name_in(part.source, name)
+        inputs[f"{tag}@{name}"] = name
+        return f"{tag}@{name}"
 
     nodes = []
     for part in parts:
@@ -224,11 +232,15 @@ def sweep_graph(switch: SwitchModel, parts: list[Part], wanted: list[tuple[str, 
             nodes.append(copy)
     used = {x for n in nodes for x in n.input}
     outputs = [name_in(tag, name) for tag, name in wanted]
-    results = [helper.make_tensor_value_info(out, elem_types.get(name, TensorProto.FLOAT), None)
-               for out, (_, name) in dict(zip(outputs, wanted)).items()]
-    inputs = [i for i in graph.input if i.name not in set(switch.switches) and i.name in used]
-    model = helper.make_model(helper.make_graph(nodes, "qfit_sensitivity", inputs, results,
-                                                [t for t in graph.initializer if t.name in used]),
+
+    def info(name: str, tensor: str, batched: bool) -> onnx.ValueInfoProto:
+        elem, shape = tensor_types.get(tensor, (TensorProto.FLOAT, None))
+        return helper.make_tensor_value_info(name, elem, (["batch", *shape[1:]] if batched and shape else None))
+
+    results = [info(out, name, False) for out, (_, name) in dict(zip(outputs, wanted)).items() if out not in inputs]
+    model = helper.make_model(helper.make_graph(nodes, "qfit_sensitivity",
+                                                [info(name, tensor, True) for name, tensor in inputs.items()],
+                                                results, [t for t in graph.initializer if t.name in used]),
                               opset_imports=list(switch.model.opset_import), ir_version=switch.model.ir_version)
     return model, outputs
 
@@ -350,39 +362,84 @@ RANK_KEY = "isolated_output_sample_sqnr_db"
 
 # ---- the sweep ---------------------------------------------------------------------------------
 
-def sweep_parts(switch: SwitchModel, rows: list[dict], out_name: str) -> tuple[list[Part], list[tuple[str, str]]]:
-    """The float and int8 models (tags "float", "int8") and per layer k "alone{k}" (only it int8, read
-    from the float model at its start) and "kept{k}" (only it float, read from the int8 model), with
-    the (tag, name) outputs the figures need: each configuration's model output and, for the
-    isolated tensor error, each layer's own tensor alone and in float."""
+# Nodes of configurations per sweep model: onnxruntime's session set-up grows faster than linearly
+# with the graph (about 4 s at 26 000 nodes, under 0.1 s at 2 000), so the layers are cut into groups,
+# one session each, handing the float and int8 models' tensors on from group to group.
+GROUP_NODES = 2000
+
+
+@dataclass
+class Group:
+    """One sweep model: the configurations of some layers and the float/int8 models they read from."""
+
+    rows: list[int]                  # indices into the swept rows
+    model: onnx.ModelProto
+    names: dict[tuple[str, str], str]
+    state_in: list[str]              # switch-model tensors it is fed (float and int8 versions)
+    state_out: list[str]             # those it hands to the next group
+
+
+def sweep_groups(switch: SwitchModel, rows: list[dict], out_name: str,
+                 tensor_types: dict[str, tuple[int, list]]) -> list[Group]:
+    """Per layer k "alone{k}" (only it int8, reading the float model at its start) and "kept{k}" (only
+    it float, reading the int8 model), packed into groups of about GROUP_NODES nodes; each group
+    also computes the float and int8 models ("float", "int8") from its state to the next group's,
+    each layer's own tensor in float (for the isolated tensor error), and the last the int8 output."""
     everything = set(switch.switches)
     cuts = find_cuts(switch, [row["name"] for row in rows])
-    parts, wanted, reads = [], [("int8", out_name)], {"float": set(), "int8": set()}
-    for k, row in enumerate(rows):
-        live = set(cuts.live[cuts.start_of[row["name"]]])
-        mine = set(switch.layer_switches[row["name"]])
-        own = switch.value_of.get(row["tensor"], row["tensor"])
+    order = sorted(range(len(rows)), key=lambda k: cuts.start_of[rows[k]["name"]])
+    configurations: dict[int, list[Part]] = {}
+    for k in order:
+        live = set(cuts.live[cuts.start_of[rows[k]["name"]]])
+        mine = set(switch.layer_switches[rows[k]["name"]])
+        own = switch.value_of.get(rows[k]["tensor"], rows[k]["tensor"])
+        configurations[k] = []
         for tag, source, on, outputs in ((f"alone{k}", "float", mine, [out_name, own]),
                                          (f"kept{k}", "int8", everything - mine, [out_name])):
             nodes = _needed_nodes(_fixed_nodes(switch, on), live, outputs)
-            read = {x for n in nodes for x in n.input} & live
-            read |= set(outputs) & live
-            reads[source] |= read
-            parts.append(Part(tag, nodes, source, read))
-            wanted += [(tag, name) for name in outputs]
-        wanted.append(("float", own))
-        reads["float"].add(own)
-    inputs = {i.name for i in switch.model.graph.input} - everything
-    chains = [Part(tag, _needed_nodes(_fixed_nodes(switch, on), inputs, sorted(reads[tag] | extra)), None, inputs)
-              for tag, on, extra in (("float", set(), set()), ("int8", everything, {out_name}))]
-    return chains + parts, wanted
+            configurations[k].append(Part(tag, nodes, source, ({x for n in nodes for x in n.input} | set(outputs))
+                                          & live))
+    packed: list[list[int]] = [[]]
+    for k in order:
+        size = sum(len(part.nodes) for part in configurations[k])
+        if packed[-1] and sum(len(p.nodes) for j in packed[-1] for p in configurations[j]) + size > GROUP_NODES:
+            packed.append([])
+        packed[-1].append(k)
+    inputs = sorted({i.name for i in switch.model.graph.input} - everything)
+    groups = []
+    for g, members in enumerate(packed):
+        state_in = inputs if g == 0 else cuts.live[cuts.start_of[rows[members[0]]["name"]]]
+        last = g == len(packed) - 1
+        state_out = [] if last else cuts.live[cuts.start_of[rows[packed[g + 1][0]]["name"]]]
+        parts = [part for k in members for part in configurations[k]]
+        own = [switch.value_of.get(rows[k]["tensor"], rows[k]["tensor"]) for k in members]
+        wanted = [(part.tag, name) for k in members for part, names in zip(
+            configurations[k], ([out_name, own[members.index(k)]], [out_name])) for name in names]
+        wanted += [("float", name) for name in own]
+        wanted += [(tag, name) for tag in ("float", "int8") for name in state_out]
+        wanted += [("int8", out_name)] if last else []
+        needs = {tag: {x for part in parts if part.source == tag for x in part.reads} | {n for t, n in wanted if t == tag}
+                 for tag in ("float", "int8")}
+        chains = [Part(tag, _needed_nodes(_fixed_nodes(switch, on), set(state_in), sorted(needs[tag])), None,
+                       set(state_in)) for tag, on in (("float", set()), ("int8", everything))]
+        model, names = sweep_graph(switch, chains + parts, wanted, tensor_types)
+        groups.append(Group(members, model, dict(zip(wanted, names)), list(state_in), list(state_out)))
+    return groups
+
+
+def _tensor_types(model: onnx.ModelProto) -> dict[str, tuple[int, list]]:
+    inferred = onnx.shape_inference.infer_shapes(model).graph
+    return {v.name: (v.type.tensor_type.elem_type,
+                     [d.dim_value if d.HasField("dim_value") else d.dim_param for d in v.type.tensor_type.shape.dim]
+                     if v.type.tensor_type.HasField("shape") else None)
+            for v in list(inferred.value_info) + list(inferred.input) + list(inferred.output)}
 
 
 def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers: list[dict], data,
           batch_size: int, kind: str, samples_available: int | None = None, sample_cap: int = DEFAULT_SAMPLE_CAP,
           progress=None, threads: int = 0) -> dict:
     """Only-this-layer-int8 and only-this-layer-float for every layer, on `data` (a sample of at most
-    `sample_cap` evaluation files), through one sweep model (see above); then `figures_of`.
+    `sample_cap` evaluation files), through the sweep models (see above); then `figures_of`.
 
     Returns {"rows": {layer: {...ROW_KEYS...}}, "ranking": [layer names, worst first], summary...}.
     """
@@ -390,15 +447,13 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
     output = reference.output_names[0]
     out_name = switch.value_of.get(output, output)
     active = [row for row in layers if switch.layer_switches.get(row["name"])]
-    inferred = onnx.shape_inference.infer_shapes(switch.model).graph
-    elem_types = {v.name: v.type.tensor_type.elem_type for v in list(inferred.value_info) + list(inferred.input)
-                  if v.type.tensor_type.elem_type != TensorProto.FLOAT}
-    parts, wanted = sweep_parts(switch, active, out_name)
-    model, names = sweep_graph(switch, parts, wanted, elem_types)
-    where = dict(zip(wanted, names))
+    groups = sweep_groups(switch, active, out_name, _tensor_types(switch.model))
     float_runner = Runner(reference.model, [output], batch_size=batch_size, threads=threads)
-    runner = Runner(model, sorted(set(names)), faithful=True, batch_size=batch_size, threads=threads)
-    float_outs, outs = [], {tag: [] for tag in [p.tag for p in parts]}
+    runners = [Runner(group.model, sorted({o.name for o in group.model.graph.output}), faithful=True,
+                      batch_size=batch_size, threads=threads) for group in groups]
+    fed = [[i.name for i in group.model.graph.input] for group in groups]
+    float_outs, int8_outs = [], []
+    outs = {k: ([], []) for k in range(len(active))}
     tensor_error = {row["name"]: ErrorSums() for row in active}
     labels: list | None = []
     samples = 0
@@ -410,19 +465,24 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
         labels = None if labels is None or batch.labels is None else labels + list(batch.labels[:keep])
         samples += keep
         float_outs.append(float_runner(inputs)[output])
-        got = runner(inputs)
-        outs["int8"].append(got[where[("int8", out_name)]])
-        for k, row in enumerate(active):
-            own = switch.value_of.get(row["tensor"], row["tensor"])
-            outs[f"alone{k}"].append(got[where[(f"alone{k}", out_name)]])
-            outs[f"kept{k}"].append(got[where[(f"kept{k}", out_name)]])
-            tensor_error[row["name"]].update(got[where[("float", own)]], got[where[(f"alone{k}", own)]])
+        state = {f"{tag}@{name}": value for name, value in inputs.items() for tag in ("float", "int8")}
+        for group, runner, names in zip(groups, runners, fed):
+            got = {**state, **runner({name: state[name] for name in names})}
+            for k in group.rows:
+                own = switch.value_of.get(active[k]["tensor"], active[k]["tensor"])
+                outs[k][0].append(got[group.names[(f"alone{k}", out_name)]])
+                outs[k][1].append(got[group.names[(f"kept{k}", out_name)]])
+                tensor_error[active[k]["name"]].update(got[group.names[("float", own)]],
+                                                       got[group.names[(f"alone{k}", own)]])
+            state = {f"{tag}@{name}": got[group.names[(tag, name)]] for name in group.state_out
+                     for tag in ("float", "int8")}
+            if not group.state_out:
+                int8_outs.append(got[group.names[("int8", out_name)]])
         if progress is not None:
             progress.update(keep)
-    joined = {tag: np.concatenate(values) for tag, values in outs.items() if values}
-    isolated = {row["name"]: joined[f"alone{k}"] for k, row in enumerate(active)}
-    kept_float = {row["name"]: joined[f"kept{k}"] for k, row in enumerate(active)}
-    rows, summary = figures_of(layers, np.concatenate(float_outs), joined["int8"], isolated, kept_float,
+    isolated = {row["name"]: np.concatenate(outs[k][0]) for k, row in enumerate(active)}
+    kept_float = {row["name"]: np.concatenate(outs[k][1]) for k, row in enumerate(active)}
+    rows, summary = figures_of(layers, np.concatenate(float_outs), np.concatenate(int8_outs), isolated, kept_float,
                                tensor_error, None if labels is None else np.asarray(labels), kind)
     summary.update({
         "samples_used": samples,
@@ -430,9 +490,10 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
         "sample_cap": sample_cap,
         "layers_swept": len(active),
         "runs_per_sample": 1 + 2 * len(active),
-        "design": "one sweep model: the float and the int8 model, and per layer its two configurations as "
-                  "plain models with the switches fixed, each run only from the first node its layer's "
-                  "quantizers touch, reading the float or int8 model's tensors there",
+        "sweep_models": len(groups),
+        "design": "each configuration a plain model with its switches fixed, run only from the first node its "
+                  "layer's quantizers touch, reading the float or int8 model's tensors there; configurations "
+                  "of neighbouring layers share one onnxruntime session",
     })
     return {"rows": rows, **summary}
 
