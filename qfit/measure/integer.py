@@ -335,26 +335,28 @@ class IntegerProgram:
         return {name: self.value(env, name) for name in wanted}
 
 
+def _broadcast(grid: Grid, ndim: int) -> tuple[np.ndarray, np.ndarray]:
+    """(float32 scale, zero point) of `grid`, shaped to broadcast against an ndim tensor."""
+    scale, zero = grid.scale.astype(np.float32), grid.zero_point
+    if not grid.per_tensor:
+        shape = [1] * ndim
+        shape[grid.axis % ndim] = -1
+        scale, zero = scale.reshape(shape), zero.reshape(shape)
+    return scale, zero
+
+
 def _dequantize(q: np.ndarray, grid: Grid) -> np.ndarray:
     """DequantizeLinear in float32: (q - z) * s."""
-    scale, zero = grid.scale, grid.zero_point
-    if not grid.per_tensor:
-        shape = [1] * q.ndim
-        shape[grid.axis % q.ndim] = -1
-        scale, zero = scale.reshape(shape), zero.reshape(shape)
+    scale, zero = _broadcast(grid, q.ndim)
     out = np.subtract(q, zero, dtype=np.float32)   # exact: |q - z| < 2^24
-    out *= scale.astype(np.float32)
+    out *= scale
     return out
 
 
 def _quantize(x: np.ndarray, grid: Grid) -> np.ndarray:
     """QuantizeLinear: saturate(round_half_even(x / s) + z), x / s in float32."""
-    scale, zero = grid.scale, grid.zero_point
-    if not grid.per_tensor:
-        shape = [1] * x.ndim
-        shape[grid.axis % x.ndim] = -1
-        scale, zero = scale.reshape(shape), zero.reshape(shape)
-    q = np.rint(np.asarray(x, np.float32) / scale.astype(np.float32)) + zero
+    scale, zero = _broadcast(grid, np.ndim(x))
+    q = np.rint(np.asarray(x, np.float32) / scale) + zero
     return np.clip(q, grid.low, grid.high).astype(np.int32)
 
 

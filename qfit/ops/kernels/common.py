@@ -100,6 +100,14 @@ def requantization_record(m0: np.ndarray, shift: np.ndarray, **extra) -> dict:
     return {"multiplier": [int(v) for v in np.ravel(m0)], "shift": [int(v) for v in np.ravel(shift)], **extra}
 
 
+def one_activation_in(operands: list, outputs: list) -> bool:
+    """The node reads one per-tensor integer activation (input 0), constants otherwise, and writes
+    per-tensor grids: the shape of every unary kernel (tables, pools, data movement)."""
+    x = operands[0]
+    return (x.kind == "activation" and x.grid.per_tensor and all(g.per_tensor for g in outputs)
+            and all(op.kind in ("constant", "absent") for op in operands[1:]))
+
+
 def channel_shape(ndim: int, axis: int, size: int) -> tuple[int, ...]:
     """Shape that broadcasts a per-channel vector of `size` along `axis` of an ndim array."""
     shape = [1] * ndim

@@ -19,7 +19,8 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.kernels.common import INT32_LIMIT, Arithmetic, Operand, Prepared, requantization_record
+from qfit.ops.kernels.common import (INT32_LIMIT, Arithmetic, Operand, Prepared, one_activation_in,
+                                    requantization_record)
 
 
 def _left_shift(*grids) -> int:
@@ -135,9 +136,7 @@ def build_div(node, operands, outputs, arithmetic):
 def build_lookup(node: NodeProto, operands: list[Operand], outputs, arithmetic: Arithmetic) -> Prepared | None:
     """Unary activation as a table over every integer of the input grid."""
     x, out = operands[0], outputs[0]
-    if x.kind != "activation" or not x.grid.per_tensor or not out.per_tensor:
-        return None
-    if any(op.kind not in ("constant", "absent") for op in operands[1:]):
+    if not one_activation_in(operands, outputs):
         return None
     every = np.arange(x.grid.low, x.grid.high + 1, dtype=np.int64)
     # DequantizeLinear's float32 arithmetic, the op in float32, QuantizeLinear's rounding: as the preview

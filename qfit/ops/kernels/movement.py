@@ -14,7 +14,8 @@ import numpy as np
 from onnx import NodeProto
 
 from qfit.ops.registry import attr
-from qfit.ops.kernels.common import Arithmetic, Grid, Operand, Prepared, centred_float, requantization_record
+from qfit.ops.kernels.common import (Arithmetic, Grid, Operand, Prepared, centred_float, one_activation_in,
+                                    requantization_record)
 
 
 def _to_grid(source: Grid, target: Grid, arithmetic: Arithmetic):
@@ -28,9 +29,7 @@ def _to_grid(source: Grid, target: Grid, arithmetic: Arithmetic):
 
 def build_movement(node: NodeProto, operands: list[Operand], outputs, arithmetic: Arithmetic) -> Prepared | None:
     x = operands[0]
-    if x.kind != "activation" or not x.grid.per_tensor or any(not g.per_tensor for g in outputs):
-        return None
-    if any(op.kind not in ("constant", "absent") for op in operands[1:]):
+    if not one_activation_in(operands, outputs):
         return None
     constants = {i: np.asarray(op.value) for i, op in enumerate(operands) if op.kind == "constant"}
     if node.op_type == "Resize" and (attr(node, "mode", b"nearest") not in (b"nearest", "nearest")):

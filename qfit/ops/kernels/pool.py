@@ -15,7 +15,8 @@ import numpy as np
 from onnx import NodeProto, helper
 
 from qfit.ops.registry import attr
-from qfit.ops.kernels.common import Arithmetic, Operand, Prepared, centred_float, requantization_record
+from qfit.ops.kernels.common import (Arithmetic, Operand, Prepared, centred_float, one_activation_in,
+                                    requantization_record)
 from qfit.ops.kernels.movement import build_movement
 
 
@@ -40,7 +41,7 @@ def _window_sum_runner(node: NodeProto, arithmetic: Arithmetic, channels: int):
 
 def build_average_pool(node: NodeProto, operands: list[Operand], outputs, arithmetic: Arithmetic) -> Prepared | None:
     x, out = operands[0], outputs[0]
-    if x.kind != "activation" or not x.grid.per_tensor or not out.per_tensor or attr(node, "ceil_mode", 0):
+    if not one_activation_in(operands, outputs) or attr(node, "ceil_mode", 0):
         return None
     include_pad = bool(attr(node, "count_include_pad", 0))
     window = int(np.prod(attr(node, "kernel_shape")))
@@ -80,9 +81,7 @@ def _mean_axes(node: NodeProto, operands: list[Operand], ndim: int) -> tuple[int
 def build_mean(node: NodeProto, operands: list[Operand], outputs, arithmetic: Arithmetic) -> Prepared | None:
     """GlobalAveragePool and ReduceMean: integer sum over the axes, 1/n folded into the multiplier."""
     x, out = operands[0], outputs[0]
-    if x.kind != "activation" or not x.grid.per_tensor or not out.per_tensor:
-        return None
-    if any(op.kind not in ("constant", "absent") for op in operands[1:]):
+    if not one_activation_in(operands, outputs):
         return None
     keepdims = node.op_type == "GlobalAveragePool" or bool(attr(node, "keepdims", 1))
     cache: dict[tuple, tuple] = {}
