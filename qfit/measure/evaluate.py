@@ -93,6 +93,7 @@ def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict],
     reconstruction = loaded.shapes.get(output) == loaded.shapes.get(input_name)
 
     def absorb(batch, reference: dict, got: dict) -> None:
+        preview.update(batch.inputs, got[int8_output])   # on the worker: beside the next batch's passes
         for t, q in zip(tensors, int8_names):
             sums[t].update(reference[t], got[q])
         score_inputs = None
@@ -111,7 +112,6 @@ def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict],
         for batch in data.batches(batch_size):
             reference = float_runner(batch.inputs)
             got = int8_runner(batch.inputs)
-            preview.update(batch.inputs, got[int8_output])
             if pending is not None:
                 pending.result()
             pending = worker.submit(absorb, batch, reference, got)
