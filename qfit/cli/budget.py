@@ -11,7 +11,7 @@ import json
 
 from qfit import files
 from qfit.cli import boundary
-from qfit.cli.arguments import add_model_and_limits, default_of
+from qfit.cli.arguments import add_arena_options, add_model_and_limits, arena_options, default_of
 from qfit.errors import QfitError
 from qfit.graph.load import parse_input_shapes
 from qfit.memory import budget
@@ -32,14 +32,8 @@ def add_parser(subparsers) -> argparse.ArgumentParser:
     add_model_and_limits(p, "ONNX model, float or QDQ")
     p.add_argument("--json", metavar="FILE", help="also write the figures as JSON to FILE")
     p.add_argument("--html", metavar="FILE", help="also write the figures as a self-contained HTML page to FILE")
-    p.add_argument("--alignment", type=int, default=d("alignment"), metavar="N",
-                   help=f"arena alignment in bytes (default {d('alignment')})")
-    p.add_argument("--no-views", action="store_true", help="count Reshape/Flatten/Squeeze/Unsqueeze outputs as copies")
-    p.add_argument("--no-inplace", action="store_true", help="elementwise ops never overwrite their input")
+    add_arena_options(p, budget.BudgetOptions)
     p.add_argument("--scratch", action="store_true", help="add an im2col-style scratch estimate for convolutions")
-    p.add_argument("--order-time-limit", type=float, default=d("order_time_limit_s"), metavar="S",
-                   help=f"seconds for the execution-order search (default {d('order_time_limit_s'):g})")
-    p.add_argument("--no-order-search", action="store_true", help="keep the graph's node order")
     p.add_argument("--cycles-per-mac", type=float, metavar="X", help="for a latency estimate (with --clock-mhz)")
     p.add_argument("--clock-mhz", type=float, metavar="F", help="for a latency estimate (with --cycles-per-mac)")
     p.add_argument("--energy-per-mac-pj", type=float, metavar="E", help="for an energy estimate")
@@ -55,19 +49,13 @@ def options_from(args) -> budget.BudgetOptions:
         raise QfitError("--cycles-per-mac and --clock-mhz go together (latency = MACs x cycles / clock)")
     if args.meta_bytes_per_layer < 0:
         raise QfitError(f"--meta-bytes-per-layer: must be >= 0, got {args.meta_bytes_per_layer}")
-    if args.alignment < 1 or args.alignment & (args.alignment - 1):
-        raise QfitError(f"--alignment: must be a power of two, got {args.alignment}")
-    if args.order_time_limit < 0:
-        raise QfitError(f"--order-time-limit: must be >= 0 seconds, got {args.order_time_limit}")
     return budget.BudgetOptions(
         flash_limit_bytes=parse_size(args.flash, "--flash"),
         sram_limit_bytes=parse_size(args.sram, "--sram"),
         flash_reserve_bytes=parse_size(args.flash_reserve, "--flash-reserve"),
-        meta_bytes_per_layer=args.meta_bytes_per_layer, alignment=args.alignment,
-        views=not args.no_views, inplace=not args.no_inplace, scratch=args.scratch,
-        order_search=not args.no_order_search, order_time_limit_s=args.order_time_limit,
+        meta_bytes_per_layer=args.meta_bytes_per_layer, scratch=args.scratch,
         cycles_per_mac=args.cycles_per_mac, clock_mhz=args.clock_mhz,
-        energy_per_mac_pj=args.energy_per_mac_pj, what_if=True if args.what_if else None)
+        energy_per_mac_pj=args.energy_per_mac_pj, what_if=True if args.what_if else None, **arena_options(args))
 
 
 def run(args) -> int:

@@ -163,8 +163,7 @@ def run(args) -> int:
                 paths.report_html: files.text_bytes(render_html(report))}
     exported = {}
     if args.export:   # the budget the report holds: the export's offsets are the report's arena plan
-        from qfit.report.export import export_files
-        exported = export_files(result.quantized.model, paths.model, args.export, export_options,
+        exported = export_command.export_files(result.quantized.model, paths.model, args.export, export_options,
                                 budget_result=result.final.budget.result)
         files.ensure_writable_dir(args.export, "--export")
     files.ensure_writable_dir(args.out)
