@@ -115,9 +115,9 @@ def window_counts(layer: dict, in_shape: list[int], out_shape: list[int]) -> lis
     counts = []
     for oh in range(out_shape[2]):
         for ow in range(out_shape[3]):
-            rows = [oh * layer["stride"][0] - layer["pads"][0] + k * layer["dilation"][0] for k in range(layer["kernel"][0])]
-            cols = [ow * layer["stride"][1] - layer["pads"][1] + k * layer["dilation"][1] for k in range(layer["kernel"][1])]
-            counts.append(sum(0 <= r < in_shape[2] for r in rows) * sum(0 <= c < in_shape[3] for c in cols))
+            taps = [[o * layer["stride"][d] - layer["pads"][d] + k * layer["dilation"][d]
+                     for k in range(layer["kernel"][d])] for d, o in ((0, oh), (1, ow))]
+            counts.append(sum(0 <= r < in_shape[2] for r in taps[0]) * sum(0 <= c < in_shape[3] for c in taps[1]))
     return counts[:1] if len(set(counts)) == 1 else counts
 
 
@@ -136,7 +136,8 @@ def check_multipliers(model: onnx.ModelProto, manifest: dict) -> int:
         for real, m, s in zip(reals, m0.tolist(), shift.tolist()):
             assert (1 << 30) <= m < (1 << 31), (layer["name"], m)
             # |M0 - real * 2^(31 - shift)| <= 1/2, plus the float64 rounding of the product (< 1e-6 here)
-            assert abs(Fraction(m) - real * Fraction(2) ** (31 - s)) <= Fraction(1, 2) + Fraction(1, 10 ** 6), layer["name"]
+            error = abs(Fraction(m) - real * Fraction(2) ** (31 - s))
+            assert error <= Fraction(1, 2) + Fraction(1, 10 ** 6), layer["name"]
             checked += 1
     return checked
 
@@ -183,7 +184,8 @@ C_CHECK_PROGRAM = r"""
 #include "expected.h"
 
 static int failures = 0;
-#define CHECK(cond, ...) do { if (!(cond)) { ++failures; fprintf(stderr, __VA_ARGS__); fputc('\n', stderr); } } while (0)
+#define CHECK(cond, ...) \
+    do { if (!(cond)) { ++failures; fprintf(stderr, __VA_ARGS__); fputc('\n', stderr); } } while (0)
 
 static int32_t element(const qmodel_array *a, uint32_t i)
 {
@@ -220,7 +222,8 @@ static void check_arrays(void)
           (unsigned)QMODEL_ARRAY_COUNT, (unsigned)EXPECTED_ARRAY_COUNT);
     for (i = 0; i < QMODEL_ARRAY_COUNT && i < EXPECTED_ARRAY_COUNT; ++i) {
         const qmodel_array *a = &qmodel_arrays[i];
-        CHECK(strcmp(a->name, expected_name[i]) == 0, "array %u is %s, expected %s", (unsigned)i, a->name, expected_name[i]);
+        CHECK(strcmp(a->name, expected_name[i]) == 0, "array %u is %s, expected %s", (unsigned)i, a->name,
+              expected_name[i]);
         CHECK(a->count == expected_count[i], "%s: %u elements, expected %u", a->name, (unsigned)a->count,
               (unsigned)expected_count[i]);
         CHECK(fnv1a32(a) == expected_fnv[i], "%s: checksum %lu, expected %lu", a->name,
@@ -244,7 +247,8 @@ static void check_layer(uint32_t l)
         product *= y->weight_shape[i];
     CHECK(!w || product == y->weight_count, "layer %u: weight shape holds %u, not %u", (unsigned)l,
           (unsigned)product, (unsigned)y->weight_count);
-    CHECK((b ? b->data : NULL) == (const void *)y->bias && y->bias_count == (b ? b->count : 0u), "layer %u: bias", (unsigned)l);
+    CHECK((b ? b->data : NULL) == (const void *)y->bias && y->bias_count == (b ? b->count : 0u),
+          "layer %u: bias", (unsigned)l);
     CHECK((m ? m->data : NULL) == (const void *)y->multipliers && (s ? s->data : NULL) == (const void *)y->shifts
           && y->requant_count == (m ? m->count : 0u) && y->requant_count == (s ? s->count : 0u),
           "layer %u: multipliers and shifts", (unsigned)l);
@@ -274,7 +278,8 @@ static void check_tensors(void)
         const qmodel_tensor *t = &qmodel_tensors[i];
         for (k = 0, elements = 1; k < t->rank; ++k)
             elements *= t->shape[k];
-        CHECK(elements == t->bytes, "tensor %u: shape holds %u, bytes %u", (unsigned)i, (unsigned)elements, (unsigned)t->bytes);
+        CHECK(elements == t->bytes, "tensor %u: shape holds %u, bytes %u", (unsigned)i, (unsigned)elements,
+              (unsigned)t->bytes);
         CHECK(t->arena_offset + t->bytes <= QMODEL_ARENA_BYTES, "tensor %u ends past the arena", (unsigned)i);
         CHECK(t->arena_offset % QMODEL_ARENA_ALIGNMENT == 0, "tensor %u: offset not aligned", (unsigned)i);
         for (j = 0; j < i; ++j) {
@@ -282,7 +287,8 @@ static void check_tensors(void)
             int live_together = t->first_step <= u->last_step && u->first_step <= t->last_step;
             int apart = t->arena_offset + t->bytes <= u->arena_offset || u->arena_offset + u->bytes <= t->arena_offset;
             if (t->buffer == u->buffer)
-                CHECK(t->arena_offset == u->arena_offset, "tensors %u and %u share a slot at two offsets", (unsigned)j, (unsigned)i);
+                CHECK(t->arena_offset == u->arena_offset, "tensors %u and %u share a slot at two offsets",
+                      (unsigned)j, (unsigned)i);
             else
                 CHECK(!live_together || apart, "overlap: tensors %u and %u live at the same step share arena bytes",
                       (unsigned)j, (unsigned)i);
@@ -336,7 +342,8 @@ def expected_header(model: onnx.ModelProto, manifest: dict) -> str:
     n = len(names)
     return "\n".join([
         f"#define EXPECTED_ARRAY_COUNT {n}u",
-        f"static const char *const expected_name[{max(n, 1)}] = {{ {', '.join(json.dumps(x) for x in names) or '0'} }};",
+        f"static const char *const expected_name[{max(n, 1)}] = "
+        f"{{ {', '.join(json.dumps(x) for x in names) or '0'} }};",
         f"static const uint32_t expected_count[{max(n, 1)}] = {{ {', '.join(f'{c}u' for c in counts) or '0'} }};",
         f"static const uint32_t expected_fnv[{max(n, 1)}] = {{ {', '.join(f'{s}u' for s in sums) or '0'} }};", ""])
 
@@ -413,7 +420,8 @@ def _weight_scales(layer: dict, m0: np.ndarray, shift: np.ndarray, s_in: float, 
 
     scales = (m0.astype(np.float64) * np.exp2(shift.astype(np.float64) - 31) * s_out / s_in).astype(np.float32)
     for s, m, k in zip(scales.tolist(), m0.tolist(), shift.tolist()):
-        assert quantize_multiplier(float(np.float64(s_in) * np.float64(np.float32(s)) / np.float64(s_out))) == (m, k), layer["name"]
+        real = float(np.float64(s_in) * np.float64(np.float32(s)) / np.float64(s_out))
+        assert quantize_multiplier(real) == (m, k), layer["name"]
     return scales
 
 
@@ -447,8 +455,10 @@ def qdq_from_export(manifest: dict, arrays: dict[str, np.ndarray], opset: int = 
             nodes.append(helper.make_node("Clip", [y, *clamp_bounds(layer, tensors[out], const)], [y + "c"]))
             y += "c"
         nodes.append(helper.make_node("QuantizeLinear", [y, *quantizer(out)], [f"t{out}_q"]))
-    inputs = [helper.make_tensor_value_info(f"t{i}_in", TensorProto.FLOAT, tensors[i]["shape"]) for i in manifest["inputs"]]
-    outputs = [helper.make_tensor_value_info(f"t{i}_q", TensorProto.INT8, tensors[i]["shape"]) for i in manifest["outputs"]]
+    inputs = [helper.make_tensor_value_info(f"t{i}_in", TensorProto.FLOAT, tensors[i]["shape"])
+              for i in manifest["inputs"]]
+    outputs = [helper.make_tensor_value_info(f"t{i}_q", TensorProto.INT8, tensors[i]["shape"])
+               for i in manifest["outputs"]]
     graph = helper.make_graph(nodes, "from_export", inputs, outputs, inits)
     return helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
 
@@ -472,17 +482,18 @@ def _layer_nodes(layer: dict, manifest: dict, arrays: dict, nodes: list, const, 
         wq = const(f"l{i}_wq", arrays[layer["weights"]].astype(np.int8).reshape(w["shape"]))
         if s_w.size == 1:   # one scale for the whole weight: a per-tensor quantizer (scalar scale and zero point)
             s_w = s_w.reshape(())
-        nodes.append(helper.make_node("DequantizeLinear", [wq, const(f"l{i}_ws", s_w), const(f"l{i}_wz", np.zeros(s_w.shape, np.int8))],
-                                      [f"l{i}_w"], axis=0))
+        w_zero = const(f"l{i}_wz", np.zeros(s_w.shape, np.int8))
+        nodes.append(helper.make_node("DequantizeLinear", [wq, const(f"l{i}_ws", s_w), w_zero], [f"l{i}_w"], axis=0))
         operands = [ins[0], f"l{i}_w"]
         if layer["bias"]:
             bq = const(f"l{i}_bq", arrays[layer["bias"]].astype(np.int32))
             bs = (np.float32(s_in) * s_w).astype(np.float32)
-            nodes.append(helper.make_node("DequantizeLinear", [bq, const(f"l{i}_bs", bs), const(f"l{i}_bz", np.zeros(bs.shape, np.int32))],
-                                          [f"l{i}_b"], axis=0))
+            b_zero = const(f"l{i}_bz", np.zeros(bs.shape, np.int32))
+            nodes.append(helper.make_node("DequantizeLinear", [bq, const(f"l{i}_bs", bs), b_zero], [f"l{i}_b"], axis=0))
             operands.append(f"l{i}_b")
         if kind == "CONV":
-            nodes.append(helper.make_node("Conv", operands, [y], dilations=layer["dilation"], group=layer["groups"], **window))
+            nodes.append(helper.make_node("Conv", operands, [y], dilations=layer["dilation"], group=layer["groups"],
+                                          **window))
         else:
             nodes.append(helper.make_node("Gemm", operands, [y], transB=1))
     elif kind in ("ADD", "MUL", "CONCAT"):
@@ -493,7 +504,8 @@ def _layer_nodes(layer: dict, manifest: dict, arrays: dict, nodes: list, const, 
     elif kind == "MAX_POOL":
         nodes.append(helper.make_node("MaxPool", ins, [y], dilations=layer["dilation"], **window))
     elif kind in ("GLOBAL_AVERAGE_POOL", "GLOBAL_MAX_POOL"):
-        nodes.append(helper.make_node({"GLOBAL_AVERAGE_POOL": "GlobalAveragePool"}.get(kind, "GlobalMaxPool"), ins, [y]))
+        op = "GlobalAveragePool" if kind == "GLOBAL_AVERAGE_POOL" else "GlobalMaxPool"
+        nodes.append(helper.make_node(op, ins, [y]))
     elif kind == "RESHAPE":
         shape = const(f"l{i}_shape", np.array(tensors[layer["output"]]["shape"], np.int64))
         nodes.append(helper.make_node("Reshape", [ins[0], shape], [y]))
@@ -594,7 +606,8 @@ def test_tensor_offsets_are_the_reports_arena_plan(demo):
     assert [manifest["layers"][i]["step"] for i in range(len(manifest["layers"]))] == sorted(
         layer["step"] for layer in manifest["layers"])
     order = demo["report"]["order"]["order"]
-    assert [layer["name"] for layer in manifest["layers"]] == [n for n in order if n in {y["name"] for y in manifest["layers"]}]
+    names = [layer["name"] for layer in manifest["layers"]]
+    assert names == [n for n in order if n in set(names)]
 
 
 def test_multipliers_and_shifts_are_the_nearest_fixed_point_factors(demo):

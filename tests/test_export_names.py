@@ -21,8 +21,8 @@ import pytest
 from onnx import TensorProto, helper, numpy_helper
 
 from qfit.cli.main import main
-from test_export import (assert_factors_are_the_integer_paths, assert_round_trip, build_check_program, check_multipliers, manifest_values, needs_cc,
-                         read_dump, run_cc, tables_match_manifest)
+from test_export import (assert_factors_are_the_integer_paths, assert_round_trip, build_check_program,
+                         check_multipliers, manifest_values, needs_cc, read_dump, run_cc, tables_match_manifest)
 
 HOSTILE = {
     "input": 'in"put */ \\ \u00e9\n',
@@ -59,7 +59,8 @@ class _Builder:
         s = self.const(tensor + "_s", np.float32(scale))
         z = self.const(tensor + "_z", np.int8(zero))
         self.nodes.append(helper.make_node("QuantizeLinear", [tensor, s, z], [tensor + "_q"], name=tensor + "_Q"))
-        self.nodes.append(helper.make_node("DequantizeLinear", [tensor + "_q", s, z], [tensor + "_dq"], name=tensor + "_DQ"))
+        self.nodes.append(helper.make_node("DequantizeLinear", [tensor + "_q", s, z], [tensor + "_dq"],
+                                           name=tensor + "_DQ"))
         return tensor + "_dq"
 
     def weights(self, tag: str, shape: tuple, x_tensor: str, bias: bool = True) -> list[str]:
@@ -96,7 +97,8 @@ def hostile_model(names: dict = HOSTILE, extra_op: str | None = None, per_tensor
                             pads=[1, 1, 1, 1]), 0.04, 5)
     add = b.quantized(b.node("Add", [mp, c2], "add", names["add"]), 0.07, -10)
     mul = b.quantized(b.node("Mul", [add, mp], "mul", names["mul"]), 0.2, -20)
-    avg = b.quantized(b.node("AveragePool", [mul], "avg", names["avg"], kernel_shape=[3, 3], pads=[1, 1, 1, 1]), 0.15, -15)
+    avg = b.quantized(b.node("AveragePool", [mul], "avg", names["avg"], kernel_shape=[3, 3], pads=[1, 1, 1, 1]),
+                      0.15, -15)
     cat = b.quantized(b.node("Concat", [avg, add], "cat", names["cat"], axis=1), 0.1, -8)
     last = b.quantized(b.node("Relu", [cat], "clamped", names["clamp"]), 0.06, -128)
     if extra_op:
@@ -106,7 +108,8 @@ def hostile_model(names: dict = HOSTILE, extra_op: str | None = None, per_tensor
     b.node("Gemm", [flat, *b.weights("fc", (5, 8), "flat")], "logits_f", names["fc"], transB=1)
     b.quantized("logits_f", 0.1, 0)
     b.nodes[-1].output[0] = "logits"
-    graph = helper.make_graph(b.nodes, "hostile", [helper.make_tensor_value_info(names["input"], TensorProto.FLOAT, [1, 3, 8, 8])],
+    graph = helper.make_graph(b.nodes, "hostile",
+                              [helper.make_tensor_value_info(names["input"], TensorProto.FLOAT, [1, 3, 8, 8])],
                               [helper.make_tensor_value_info("logits", TensorProto.FLOAT, [1, 5])], b.inits)
     return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 21)], ir_version=10)
 
@@ -283,7 +286,8 @@ def test_refusals_are_one_line_and_write_nothing(tmp_path, capsys):
         [helper.make_node("Relu", ["x"], ["y"])], "f", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 4])],
         [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 4])]), opset_imports=[helper.make_opsetid("", 21)]),
         str(float_model))
-    assert "not a QDQ model" in _refused(capsys, ["export", str(float_model), "--out", str(tmp_path / "b")], tmp_path / "b")
+    err = _refused(capsys, ["export", str(float_model), "--out", str(tmp_path / "b")], tmp_path / "b")
+    assert "not a QDQ model" in err
     onnx.save(hostile_model(), str(model))
     assert "--prefix" in _refused(capsys, ["export", str(model), "--out", str(tmp_path / "c"), "--prefix", "_x"],
                                   tmp_path / "c")

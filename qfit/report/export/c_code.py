@@ -255,7 +255,8 @@ def render_source(export: ExportModel, prefix: str, header_name: str) -> str:
     if export.arrays():
         lines.append(f"const {prefix}_array {prefix}_arrays[{p}_ARRAY_COUNT] = {{")
         for array in export.arrays():
-            lines.append(f'    {{ "{array.c_name}", {p}_ROLE_{array.role.upper()}, {array.elem_bytes}u, {array.layer}u, '
+            lines.append(f'    {{ "{array.c_name}", {p}_ROLE_{array.role.upper()}, {array.elem_bytes}u, '
+                         f'{array.layer}u, '
                          f"{array.c_name}, (uint32_t){p}_COUNT({array.c_name}) }},")
         lines += ["};", ""]
     return "\n".join(lines)

@@ -347,7 +347,8 @@ def _activation_inputs(node: onnx.NodeProto, ctx: _Context, kind: str) -> list[s
         names = [n for n in node.input if n]
     for name in names:
         if name in ctx.loaded.constants:
-            raise QfitError(f"export: layer '{node.name}' ({node.op_type}): a constant operand '{name}' is not exported")
+            raise QfitError(f"export: layer '{node.name}' ({node.op_type}): a constant operand '{name}' "
+                            "is not exported")
     return names
 
 
