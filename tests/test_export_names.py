@@ -27,7 +27,7 @@ from test_export import (assert_factors_are_the_integer_paths, assert_round_trip
 HOSTILE = {
     "input": 'in"put */ \\ \u00e9\n',
     "conv1": 'conv "1" */ /* \\ ??= \u00e9\nline',
-    "relu1": "??( relu ??/",
+    "relu1": "??( relu6 ??/",
     "pool": "pool/*",
     "conv2": "\u00e9\u00e9\u00e9",          # nothing left after sanitising
     "add": "a-b",
@@ -86,13 +86,15 @@ class _Builder:
 
 
 def hostile_model(names: dict = HOSTILE, extra_op: str | None = None, per_tensor: bool = False) -> onnx.ModelProto:
-    """Conv+ReLU -> MaxPool (shared quantizer) -> depthwise Conv -> Add -> Mul -> AveragePool (pads not
+    """Conv+ReLU6 -> MaxPool (shared quantizer) -> depthwise Conv -> Add -> Mul -> AveragePool (pads not
     counted) -> Concat (two input scales) -> Relu alone -> GlobalAveragePool -> Flatten -> Gemm."""
     b = _Builder(seed=7, per_tensor=per_tensor)
     x = b.quantized(names["input"], 0.03, -3)
     c1 = b.node("Conv", [x, *b.weights("c1", (4, 3, 3, 3), names["input"])], "c1", names["conv1"], pads=[1, 1, 1, 1])
-    r1 = b.quantized(b.node("Relu", [c1], "r1 \"out\"", names["relu1"]), 0.05, -128)
-    mp = b.quantized(b.node("MaxPool", [r1], "mp", names["pool"], kernel_shape=[2, 2], strides=[2, 2]), 0.05, -128)
+    # ReLU6 into a symmetric quantizer (as `qfit check --symmetric` writes): both bounds inside int8
+    six = [b.const("zero", np.float32(0.0)), b.const("six", np.float32(6.0))]
+    r1 = b.quantized(b.node("Clip", [c1, *six], "r1 \"out\"", names["relu1"]), 0.05, 0)
+    mp = b.quantized(b.node("MaxPool", [r1], "mp", names["pool"], kernel_shape=[2, 2], strides=[2, 2]), 0.05, 0)
     c2 = b.quantized(b.node("Conv", [mp, *b.weights("c2", (4, 1, 3, 3), "mp")], "c2", names["conv2"], group=4,
                             pads=[1, 1, 1, 1]), 0.04, 5)
     add = b.quantized(b.node("Add", [mp, c2], "add", names["add"]), 0.07, -10)
@@ -133,8 +135,9 @@ def test_every_layer_kind_is_exported(hostile):
     by_kind = {}
     for layer in hostile["manifest"]["layers"]:
         by_kind.setdefault(layer["kind"], layer)     # the first of each kind
-    assert by_kind["CONV"]["fused_activation"] == HOSTILE["relu1"]       # ReLU folded into the clamp
-    assert by_kind["CONV"]["act_min"] == -128
+    assert by_kind["CONV"]["fused_activation"] == HOSTILE["relu1"]       # ReLU6 folded into the clamp
+    # QuantizeLinear's own rounding of the bounds: 0 / 0.05 + 0 = 0 and 6 / 0.05 + 0 = 120 (ONNX spec)
+    assert (by_kind["CONV"]["act_min"], by_kind["CONV"]["act_max"]) == (0, 120)
     avg = by_kind["AVERAGE_POOL"]      # corners see 4 of 9 values, edges 6, the middle 9: one factor each
     assert next(a for a in hostile["manifest"]["arrays"] if a["name"] == avg["multipliers"])["count"] == 16
     assert by_kind["MAX_POOL"]["multipliers"] is None                     # shared quantizer: bytes move
