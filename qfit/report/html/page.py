@@ -233,6 +233,8 @@ def _flash_section(f: Figures) -> str:
 
 
 _LAYER_COLUMNS = [("sqnr_db", "accumulated", "db"), ("sqnr_isolated_db", "isolated", "db"),
+                  ("isolated_output_sample_sqnr_db", "output SQNR, alone int8", "db"),
+                  ("float_recovery_db", "output SQNR gain, kept float", "db"),
                   ("sensitivity_pt", "drop, alone int8", "pt"),
                   ("sensitivity_agreement_pt", "agreement lost, alone int8", "pt"),
                   ("float_recovery_pt", "recovered, kept float", "pt"),
@@ -263,7 +265,8 @@ def _fallback_cell(f: Figures, path: str) -> str:
 def _layer_table(f: Figures, indices: list[int], letters: dict[int, str] | None = None,
                  extra: list = ()) -> str:
     layers = f.get("layers")
-    columns = [c for c in _LAYER_COLUMNS + list(extra) if any(c[0] in layers[i] for i in indices)]
+    # a column only where some row has a figure (the sweep leaves points it cannot resolve null)
+    columns = [c for c in _LAYER_COLUMNS + list(extra) if any(layers[i].get(c[0]) is not None for i in indices)]
     head = ("<th>mark</th>" if letters is not None else "") + "<th>layer</th><th>op</th><th>stored as</th>"
     head += "".join(f'<th class="num">{label}</th>' for _, label, _ in columns)
     rows = []
