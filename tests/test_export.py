@@ -691,7 +691,7 @@ def test_object_size_agrees_with_the_reports_flash_figure(demo, tmp_path):
 def test_round_trip_through_the_integer_path_gives_the_int8_models_integers(demo, c_checked):
     pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
     _, arrays = c_checked    # the arrays as the compiled object holds them
-    images = _demo_images(per_class=2)
+    images = _demo_images(per_class=10)   # 60 evaluation images, the first 10 of each class
     outputs = assert_round_trip(demo["model"], demo["manifest"], arrays, images)
     (logits,) = outputs.values()
     assert logits.shape == (len(images), 6)
