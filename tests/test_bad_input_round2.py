@@ -20,18 +20,9 @@ from onnx import TensorProto, helper, numpy_helper
 from qfit.cli import boundary
 from qfit import files, sizes
 from qfit.quant import scale_floor
-from test_bad_input import (SIZES, _keep_sigterm_handler, assert_refused, check_args, conv_model,  # noqa: F401
-                            npy_folder, run_qfit)
-
-
-@pytest.fixture
-def calib(tmp_path):
-    return npy_folder(tmp_path / "calib")
-
-
-@pytest.fixture
-def model(tmp_path):
-    return conv_model(folder=tmp_path)
+# the fixtures (calib, model, the SIGTERM handler kept) and the refusal contract are the first table's
+from test_bad_input import (SIZES, _keep_sigterm_handler, assert_refused, calib, check_args,  # noqa: F401
+                            conv_model, model, npy_folder, run_qfit)
 
 
 def file_bytes(path):

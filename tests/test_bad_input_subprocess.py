@@ -14,19 +14,9 @@ import shutil
 import pytest
 
 from cli_harness import run_case
-from test_bad_input import SIZES, conv_model, npy_folder
+from test_bad_input import SIZES, calib, conv_model, model  # noqa: F401  (fixtures)
 
 pytestmark = pytest.mark.slow
-
-
-@pytest.fixture
-def model(tmp_path):
-    return conv_model(folder=tmp_path)
-
-
-@pytest.fixture
-def calib(tmp_path):
-    return npy_folder(tmp_path / "calib")
 
 
 def assert_one_line_refusal(run, *fragments):
