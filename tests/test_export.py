@@ -144,8 +144,8 @@ def check_multipliers(model: onnx.ModelProto, manifest: dict) -> int:
 
 def assert_factors_are_the_integer_paths(model: onnx.ModelProto, manifest: dict) -> int:
     """Every exported (M0, shift) is the one qfit's integer path runs the layer with (its per-layer
-    record); a layer the path runs as a lookup table (a lone activation) has no factors to compare.
-    Returns how many layers were compared."""
+    record), and a layer exported as a table is one the path runs as a lookup table. Returns how many
+    layers' factors were compared."""
     from qfit.measure.integer import layer_requantization
 
     records = layer_requantization(model)
@@ -153,13 +153,14 @@ def assert_factors_are_the_integer_paths(model: onnx.ModelProto, manifest: dict)
     compared = 0
     for layer in manifest["layers"]:
         record = records.get(layer["name"])
+        if layer["table"] is not None:     # a lone clamp: the path runs it as a lookup table too
+            assert record == {"lookup_table_entries": 256}, layer["name"]
+            continue
         if layer["multipliers"] is None:
             assert record is None, layer["name"]
             continue
         ours = list(zip(manifest_values(arrays[layer["multipliers"]]).tolist(),
                         manifest_values(arrays[layer["shifts"]]).tolist()))
-        if "lookup_table_entries" in record:
-            continue
         if "inputs" in record:       # Concat: per input, "copied" where the grids are equal (a factor of 1)
             theirs = [(1 << 30, 1) if r == "copied" else (r["multiplier"][0], r["shift"][0]) for r in record["inputs"]]
         else:
@@ -240,6 +241,7 @@ static void check_layer(uint32_t l)
     const qmodel_layer *y = &qmodel_layers[l];
     const qmodel_array *w = array_of(l, QMODEL_ROLE_WEIGHTS), *b = array_of(l, QMODEL_ROLE_BIAS);
     const qmodel_array *m = array_of(l, QMODEL_ROLE_MULTIPLIERS), *s = array_of(l, QMODEL_ROLE_SHIFTS);
+    const qmodel_array *t = array_of(l, QMODEL_ROLE_TABLE);
     uint32_t i, product = 1;
     CHECK((w ? w->data : NULL) == (const void *)y->weights && y->weight_count == (w ? w->count : 0u),
           "layer %u: weights pointer or count", (unsigned)l);
@@ -252,6 +254,7 @@ static void check_layer(uint32_t l)
     CHECK((m ? m->data : NULL) == (const void *)y->multipliers && (s ? s->data : NULL) == (const void *)y->shifts
           && y->requant_count == (m ? m->count : 0u) && y->requant_count == (s ? s->count : 0u),
           "layer %u: multipliers and shifts", (unsigned)l);
+    CHECK((t ? t->data : NULL) == (const void *)y->table && (!t || t->count == 256u), "layer %u: table", (unsigned)l);
     CHECK(y->act_min <= y->act_max, "layer %u: clamp [%d, %d]", (unsigned)l, y->act_min, y->act_max);
     CHECK(y->input_first + y->input_count <= QMODEL_LAYER_INPUT_COUNT && y->output < QMODEL_TENSOR_COUNT,
           "layer %u: tensor indices", (unsigned)l);

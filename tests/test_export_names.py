@@ -142,6 +142,8 @@ def test_every_layer_kind_is_exported(hostile):
     assert next(a for a in hostile["manifest"]["arrays"] if a["name"] == avg["multipliers"])["count"] == 16
     assert by_kind["MAX_POOL"]["multipliers"] is None                     # shared quantizer: bytes move
     assert check_multipliers(hostile["model"], hostile["manifest"]) > 20
+    clamp = by_kind["CLAMP"]
+    assert clamp["multipliers"] is None and clamp["table"] is not None
 
 
 def test_names_are_kept_in_full_in_the_manifest(hostile):
@@ -173,7 +175,7 @@ def test_identifiers_are_valid_unique_and_comments_hold_no_model_text(hostile):
     names = [a["name"] for a in hostile["manifest"]["arrays"]]
     assert len(set(names)) == len(names)
     for name in names:   # C99 6.4.2: letters, digits, underscore; 63 significant characters (5.2.4.1)
-        assert re.fullmatch(r"tray_cam_l\d+(_[a-z0-9]+)*_[wbms]", name) and len(name) <= 63, name
+        assert re.fullmatch(r"tray_cam_l\d+(_[a-z0-9]+)*_[wbmst]", name) and len(name) <= 63, name
     source = (hostile["dir"] / "tray_cam.c").read_text(encoding="ascii")   # every byte outside ASCII escaped
     header = (hostile["dir"] / "tray_cam.h").read_text(encoding="ascii")
     for text in (source, header):
@@ -242,8 +244,36 @@ def test_the_c_checks_catch_a_changed_weight_and_an_overlapping_tensor(hostile, 
 def test_multipliers_and_shifts_are_those_the_integer_path_runs(hostile):
     pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
     with_factors = sum(layer["multipliers"] is not None for layer in hostile["manifest"]["layers"])
-    # every layer with factors but the lone ReLU, which the integer path runs as a lookup table
-    assert assert_factors_are_the_integer_paths(hostile["model"], hostile["manifest"]) == with_factors - 1
+    assert assert_factors_are_the_integer_paths(hostile["model"], hostile["manifest"]) == with_factors == 8
+
+
+def test_a_lone_clamp_is_the_integer_paths_table_on_every_input(hostile):
+    pytest.importorskip("qfit.measure.integer", reason="the integer evaluation path is not installed")
+    from qfit.measure.integer import IntegerProgram
+
+    manifest = hostile["manifest"]
+    layer = next(y for y in manifest["layers"] if y["kind"] == "CLAMP")
+    table = next(manifest_values(a) for a in manifest["arrays"] if a["name"] == layer["table"])
+    (t_in,), t_out = [manifest["tensors"][i] for i in layer["inputs"]], manifest["tensors"][layer["output"]]
+    # the model's own clamp node between the two quantizers, fed every int8 value once
+    node = next(n for n in hostile["model"].graph.node if n.name == layer["name"])
+    one = onnx.helper.make_node(node.op_type, ["x_dq", *node.input[1:]], ["y"], name="clamp")
+    grids = [numpy_helper.from_array(np.float32(t["scale"]), f"s{i}") for i, t in enumerate((t_in, t_out))]
+    grids += [numpy_helper.from_array(np.int8(t["zero_point"]), f"z{i}") for i, t in enumerate((t_in, t_out))]
+    grids += [i for i in hostile["model"].graph.initializer if i.name in node.input[1:]]   # Clip bounds
+    graph = helper.make_graph(
+        [helper.make_node("QuantizeLinear", ["x", "s0", "z0"], ["x_q"]),
+         helper.make_node("DequantizeLinear", ["x_q", "s0", "z0"], ["x_dq"]), one,
+         helper.make_node("QuantizeLinear", ["y", "s1", "z1"], ["y_q"])], "clamp",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, [256])],
+        [helper.make_tensor_value_info("y_q", TensorProto.INT8, [256])], grids)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 21)])
+    every = np.arange(-128, 128)
+    x = ((every - t_in["zero_point"]).astype(np.float32) * np.float32(t_in["scale"])).astype(np.float32)
+    program = IntegerProgram(model)
+    assert program.float_nodes == []
+    assert np.array_equal(program.run({"x": x}, ["y_q"])["y_q"], table)
+    assert len(np.unique(table)) > 100 and table[0] == layer["act_min"]   # rescaled (not a copy), clamped
 
 
 def test_every_layer_kind_round_trips_through_the_integer_path(hostile):

@@ -19,8 +19,8 @@ FORMAT_VERSION = 1
 MAX_NAME_BYTES = 200
 MAX_IDENTIFIER_CHARS = 63      # C99 5.2.4.1: significant initial characters of an internal identifier
 MAX_PREFIX_CHARS = 24
-ROLES = ("weights", "bias", "multipliers", "shifts")
-ROLE_SUFFIX = {"weights": "w", "bias": "b", "multipliers": "m", "shifts": "s"}
+ROLES = ("weights", "bias", "multipliers", "shifts", "table")
+ROLE_SUFFIX = {"weights": "w", "bias": "b", "multipliers": "m", "shifts": "s", "table": "t"}
 LAYOUTS = ("NCHW", "ND")
 VALUES_PER_LINE = 20
 INT32_MIN = -(1 << 31)
@@ -152,6 +152,7 @@ typedef struct {
     const int32_t *multipliers; /* real factor = multiplier * 2^(shift - 31), or NULL */
     const int8_t *shifts;
     uint32_t requant_count;     /* see docs/export.md: per output channel, per input, or per position */
+    const int8_t *table;        /* CLAMP: 256 entries, output for input q at table[q + 128], or NULL */
 } qmodel_layer;
 
 typedef struct {
@@ -212,7 +213,8 @@ def _layer_entry(layer, input_first: int, prefix: str) -> str:
             f"{_dims(layer.dilation, 2)}, {layer.groups}u, {layer.axis}u, {layer.left_shift}u, {layer.act_min}, "
             f"{layer.act_max},\n"
             f"      {weights}, {_dims(layer.weights.shape if layer.weights else [], 4)},\n"
-            f"      {_pointer_and_count(layer.bias, prefix)}, {requant} }},")
+            f"      {_pointer_and_count(layer.bias, prefix)}, {requant},\n"
+            f"      {layer.table.c_name if layer.table is not None else 'NULL'} }},")
 
 
 def _tensor_entry(tensor, prefix: str) -> str:

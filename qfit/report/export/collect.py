@@ -103,9 +103,10 @@ class Layer:
     bias: ParamArray | None = None
     multipliers: ParamArray | None = None
     shifts: ParamArray | None = None
+    table: ParamArray | None = None       # CLAMP: output integer for every input integer
 
     def arrays(self) -> list[ParamArray]:
-        return [a for a in (self.weights, self.bias, self.multipliers, self.shifts) if a is not None]
+        return [a for a in (self.weights, self.bias, self.multipliers, self.shifts, self.table) if a is not None]
 
 
 @dataclass
@@ -198,6 +199,19 @@ def _clamp(layer: Layer, node: onnx.NodeProto, constants: dict, scale: float, ze
         layer.act_min = max(layer.act_min, _quantize_bound(low, scale, zero_point))
     if high is not None and np.isfinite(high):
         layer.act_max = min(layer.act_max, _quantize_bound(high, scale, zero_point))
+
+
+def _clamp_table(layer: Layer, grid_in: tuple[float, int], grid_out: tuple[float, int]) -> None:
+    """A clamp that is a layer of its own, as the integer path runs it (qfit.ops.kernels, a lookup
+    over every input integer): dequantize in float32, clamp, QuantizeLinear's rounding. The clamp is
+    exact in float32, so the table needs no runtime: entry q + 128 is the output for input q."""
+    (s_in, z_in), (s_out, z_out) = grid_in, grid_out
+    every = np.arange(INT8_MIN, INT8_MAX + 1, dtype=np.int64)
+    real = (every - z_in).astype(np.float32) * np.float32(s_in)
+    # the bounds as reals on the output grid: clip(Q(x)) = Q(clip(x)), Q monotonic
+    q = np.clip(np.rint(real / np.float32(s_out)) + z_out, layer.act_min, layer.act_max)
+    layer.table = ParamArray("table", "int8_t", q.astype(np.int64), [int(q.size)], layer.index,
+                             "clamp(s_in (q - z_in)) quantized to the output, for q = -128..127")
 
 
 def _spatial(layer: Layer, node: onnx.NodeProto, kernel: list[int], in_shape, out_shape) -> None:
@@ -372,12 +386,13 @@ def _build_layer(index: int, step: int, node: onnx.NodeProto, out_t: str, ctx: _
                  "s_in / (s_out x values in the window), per output position")
     elif kind in PASS_THROUGH_KINDS and ctx.scales[in_names[0]] == ctx.scales[out_t]:
         pass    # same quantizer in and out: the kernel moves bytes, nothing to rescale
+    elif kind == "CLAMP":
+        _clamp(layer, node, ctx.loaded.constants, *ctx.scales[out_t])
+        _clamp_table(layer, ctx.scales[in_names[0]], ctx.scales[out_t])
     else:
         _requant(layer, [ctx.scale(n) / s_out for n in in_names], "s_in / s_out, per input")
     if kind == "CONCAT":
         layer.axis = int(ops.attr(node, "axis", 0)) % len(ctx.shape(out_t))
-    if kind == "CLAMP":
-        _clamp(layer, node, ctx.loaded.constants, *ctx.scales[out_t])
     return layer
 
 

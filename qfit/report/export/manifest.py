@@ -45,7 +45,7 @@ def _layer(layer) -> dict:
             "axis": layer.axis, "left_shift": layer.left_shift, "act_min": layer.act_min, "act_max": layer.act_max,
             "fused_activation": layer.fused_activation, "weights": _name_of(layer.weights),
             "bias": _name_of(layer.bias), "multipliers": _name_of(layer.multipliers),
-            "shifts": _name_of(layer.shifts)}
+            "shifts": _name_of(layer.shifts), "table": _name_of(layer.table)}
 
 
 def _tensor(tensor) -> dict:
