@@ -411,3 +411,19 @@ def test_bad_input_small_input_file_is_a_folder(tmp_path, capfd, model, calib, f
     extra = [flag, calib] + (["--eval", calib] if flag == "--labels" else [])
     assert_refused(capfd, check_args(model, calib, tmp_path / "out", *extra), tmp_path / "out",
                    f"{what} {calib}: is a directory, not a file")
+
+
+@pytest.mark.parametrize("required_bytes", [0, -(2 ** 63)])
+def test_bad_input_a_peak_of_zero_or_less_never_fits(tmp_path, required_bytes):
+    """A wrapped-around count used to read as "fits" under any limit; whatever produced it, a peak
+    that is not positive is now "does not fit"."""
+    from qfit.graph.load import load_model
+    from qfit.memory import sram
+    from qfit.memory.options import BudgetOptions
+    from qfit.quant.plan import make_plan
+    loaded = load_model(conv_model(folder=tmp_path))
+    options = BudgetOptions(flash_limit_bytes=1 << 20, sram_limit_bytes=1 << 18)
+    memory = sram.build_memory_model(loaded, make_plan(loaded), options)
+    _, live, _ = sram.sram_for(memory, options)
+    assert sram.sram_section(memory, live, options, live.peak_bytes)["fits"] is True  # the real peak fits
+    assert sram.sram_section(memory, live, options, required_bytes)["fits"] is False
