@@ -102,6 +102,20 @@ def accuracy_line(report: dict) -> str:
     return text + ("" if gate == fmt.MISSING else f"; accuracy gate: {gate}")
 
 
+def gate_lines(verdict: dict) -> list[str]:
+    """What the accuracy gate compared (and whether its limit is the default), a failed expected float
+    accuracy, and the warnings (qfit.measure.gate; docs/report.md)."""
+    lines = []
+    gate = verdict.get("accuracy_gate") or {}
+    if gate.get("reason"):  # the reason says "default limit" when no --max-drop was given
+        lines.append(f"Accuracy gate: {gate['reason']}.")
+    message = (verdict.get("float_check") or {}).get("message")
+    if message:
+        lines.append(f"Float accuracy: {message}.")
+    lines += [f"Warning: {warning}." for warning in verdict.get("warnings") or []]
+    return lines
+
+
 def verdict_section(report: dict) -> Section:
     flash, sram = report["flash"], report["sram"]
     rows = [_memory_row("flash", flash["total_bytes"], flash["limit_bytes"], flash["fits"]),
@@ -109,6 +123,7 @@ def verdict_section(report: dict) -> Section:
     lines = [result_line(report)]
     if report.get("accuracy"):
         lines.append(accuracy_line(report))
+    lines += gate_lines(report.get("verdict") or {})
     if report.get("model_kind"):
         kind = ("QDQ model, figures as quantized" if report["model_kind"] == "qdq" else
                 "float model, figures as if quantized to int8")
