@@ -299,6 +299,7 @@ def open_evaluation(options: CheckOptions, loaded: LoadedModel) -> tuple[DataFol
     reused = options.eval_dir is None or os.path.abspath(options.eval_dir) == os.path.abspath(options.calib_dir)
     data = open_data(options.eval_dir or options.calib_dir, loaded, options, "evaluation",
                      labels_csv=options.labels_csv, limit=options.eval_limit)
+    gates.check_expectation_has_labels(gate_options(options), data.labels is not None)  # before any pass
     return data, reused
 
 

@@ -122,3 +122,11 @@ def test_preprocessing_options_with_array_data_exit_2(tmp_path, digits, capfd):
     err = capfd.readouterr().err
     assert code == 2 and report is None and not (tmp_path / "out").exists()
     assert len(err.strip().splitlines()) == 1 and "apply to images only" in err
+
+
+def test_expect_float_without_labels_exits_2_before_any_pass(tmp_path, digits, capfd):
+    calib, _ = digits
+    code, report = _digits(tmp_path / "out", digits, "--expect-float", "98.7", eval_dir=calib)
+    err = capfd.readouterr().err
+    assert code == 2 and report is None and not (tmp_path / "out").exists()
+    assert "--expect-float: needs labelled evaluation data" in err and len(err.strip().splitlines()) == 1

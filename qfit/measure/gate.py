@@ -86,9 +86,7 @@ def float_check(accuracy: dict, gate: GateOptions) -> dict | None:
     """verdict.float_check: the measured float top-1 against the one measured in training."""
     if gate.expect_float_pt is None:
         return None
-    if accuracy.get("metric") != "top1":
-        raise QfitError("--expect-float: needs labelled evaluation data (class subfolders or --labels); "
-                        "this run has no labels to measure the float top-1 on")
+    check_expectation_has_labels(gate, accuracy.get("metric") == "top1")
     measured, expected = accuracy["float"], gate.expect_float_pt
     passed = abs(measured - expected) <= gate.float_tolerance_pt
     section = {"expected_pt": expected, "measured_pt": measured, "tolerance_pt": gate.float_tolerance_pt,
@@ -98,6 +96,13 @@ def float_check(accuracy: dict, gate: GateOptions) -> dict | None:
                               f"from the {expected:.2f} % expected from training (tolerance "
                               f"{gate.float_tolerance_pt:g} pt): preprocessing or labels differ from training")
     return section
+
+
+def check_expectation_has_labels(gate: GateOptions, labelled: bool) -> None:
+    """--expect-float needs labels; checked as soon as the evaluation folder is open."""
+    if gate.expect_float_pt is not None and not labelled:
+        raise QfitError("--expect-float: needs labelled evaluation data (class subfolders or --labels); "
+                        "this run has no labels to measure the float top-1 on")
 
 
 def accuracy_warnings(accuracy: dict) -> list[str]:
