@@ -110,6 +110,13 @@ def _verdict(f: Figures, is_check: bool) -> str:
     if f.get("evaluation.reused_calibration_data"):
         out.append('<p class="note">No separate evaluation folder was given: the figures were measured on '
                    'the calibration data itself and are optimistic.</p>')
+    # the accuracy gate's comparison, a failed expected float accuracy, warnings (qfit.measure.gate)
+    if f.has("verdict.accuracy_gate.reason"):
+        out.append(f'<p>Accuracy gate: {f.text("verdict.accuracy_gate.reason", "text")}.</p>')
+    if f.get("verdict.float_check.message"):
+        out.append(f'<p><strong>Float accuracy.</strong> {f.text("verdict.float_check.message", "text")}.</p>')
+    for i in range(len(f.get("verdict.warnings") or [])):
+        out.append(f'<p><strong>Warning.</strong> {f.text(f"verdict.warnings.{i}", "text")}.</p>')
     if f.has("caution"):
         out.append(f'<div class="caution"><strong>Caution.</strong>{f.text("caution", "text")}</div>')
     out.append("</section>")
