@@ -147,7 +147,7 @@ def mobilenet_check_figures(sizes: dict, work: str, Figure, zoo, write_samples) 
     floor, check = min(runs["floor"]), min(runs["check"])
     value = check / floor
     flat = peaks[many] / peaks[few]
-    label = f"MobileNetV2 {width:g} {resolution}"
+    label = f"MobileNetV2 {width} {resolution}"
     return [
         Figure(f"{label}, check with the sweep off / bare float pass", f"{value:.2f}x", "<= 4x", value <= 4.0,
                f"{zm.params / 1e6:.2f} M params, {calib_count} calibration + {many} evaluation .npy files: check "
