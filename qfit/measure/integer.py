@@ -357,7 +357,7 @@ def _quantize(x: np.ndarray, grid: Grid) -> np.ndarray:
     """QuantizeLinear: saturate(round_half_even(x / s) + z), x / s in float32."""
     scale, zero = _broadcast(grid, np.ndim(x))
     q = np.rint(np.asarray(x, np.float32) / scale) + zero
-    return np.clip(q, grid.low, grid.high).astype(np.int32)
+    return np.clip(q, grid.low, grid.high).astype(fixed_point.storage_dtype(grid.low, grid.high))
 
 
 class IntegerRunner:

@@ -26,6 +26,8 @@ import math
 
 import numpy as np
 
+from qfit.ops.kernels.common import storage_dtype
+
 ROUNDINGS = ("double", "single")
 INT32_MIN, INT32_MAX = -(1 << 31), (1 << 31) - 1
 
@@ -201,16 +203,17 @@ class Requantizer:
                            and np.all(self.right <= 30) and max(abs(self.low), abs(self.high)) < (1 << 30))
         self.half_minus_one = np.where(self.right > 0, ((np.int64(1) << self.right) >> 1) - 1,
                                        INT32_MAX).astype(np.int32)
+        self.dtype = storage_dtype(self.low, self.high)
         self._by_rank: dict[int, list[np.ndarray]] = {}
 
     def __call__(self, acc: np.ndarray) -> np.ndarray:
-        """int32 output integers for an accumulator array (not modified)."""
+        """Output integers (in `storage_dtype` of [low, high]) for an accumulator array (not modified)."""
         if not self.fast:
             exact = np.asarray(acc).astype(np.int64) + self.bias
             return requantize(exact, self.m0, self.shift, self.zero_point, self.rounding,
-                              self.low, self.high).astype(np.int32)
+                              self.low, self.high).astype(self.dtype)
         acc = np.asarray(acc)
-        out = np.empty(acc.shape, np.int32)
+        out = np.empty(acc.shape, self.dtype)
         if acc.size == 0:
             return out
         constants = self._constants(acc.ndim)

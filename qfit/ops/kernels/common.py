@@ -100,6 +100,16 @@ def requantization_record(m0: np.ndarray, shift: np.ndarray, **extra) -> dict:
     return {"multiplier": [int(v) for v in np.ravel(m0)], "shift": [int(v) for v in np.ravel(shift)], **extra}
 
 
+def storage_dtype(low: int, high: int):
+    """The narrowest integer type holding [low, high]: int8 activations are stored as int8, as on the
+    device (every pass that reads them reads a quarter of the bytes of int32)."""
+    for dtype in (np.int8, np.uint8, np.int16, np.uint16, np.int32):
+        info = np.iinfo(dtype)
+        if info.min <= low and high <= info.max:
+            return dtype
+    return np.int64
+
+
 def one_activation_in(operands: list, outputs: list) -> bool:
     """The node reads one per-tensor integer activation (input 0), constants otherwise, and writes
     per-tensor grids: the shape of every unary kernel (tables, pools, data movement)."""

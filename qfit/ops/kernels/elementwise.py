@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 from onnx import NodeProto
 
-from qfit.ops.kernels.common import (INT32_LIMIT, Arithmetic, Operand, Prepared, one_activation_in,
+from qfit.ops.kernels.common import (INT32_LIMIT, Arithmetic, Operand, Prepared, one_activation_in, storage_dtype,
                                     requantization_record)
 
 
@@ -112,7 +112,7 @@ def build_mul(node: NodeProto, operands: list[Operand], outputs, arithmetic: Ari
         def run_constant(values):
             centred = fixed if fixed is not None else values[0].astype(np.int64) - zero
             scaled = arithmetic.multiply(centred * sign, m0, shift) + out.z
-            return [np.clip(scaled, out.low, out.high).astype(np.int32)]
+            return [np.clip(scaled, out.low, out.high).astype(storage_dtype(out.low, out.high))]
 
         return Prepared(run_constant, requantization_record(m0, shift))
     if not b.is_integer or not b.grid.per_tensor:
@@ -143,7 +143,8 @@ def build_lookup(node: NodeProto, operands: list[Operand], outputs, arithmetic: 
     real = (every - x.grid.z).astype(np.float32) * np.float32(x.grid.s)
     constants = {i: np.asarray(op.value) for i, op in enumerate(operands) if op.kind == "constant"}
     activated = arithmetic.compile(node, constants)([real])[0]
-    table = np.clip(np.rint(activated / np.float32(out.s)) + out.z, out.low, out.high).astype(np.int32)
+    table = np.clip(np.rint(activated / np.float32(out.s)) + out.z, out.low, out.high).astype(
+        storage_dtype(out.low, out.high))
     low = x.grid.low
 
     def run(values):

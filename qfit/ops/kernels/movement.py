@@ -15,13 +15,14 @@ from onnx import NodeProto
 
 from qfit.ops.registry import attr
 from qfit.ops.kernels.common import (Arithmetic, Grid, Operand, Prepared, centred_float, one_activation_in,
-                                    requantization_record)
+                                    requantization_record, storage_dtype)
 
 
 def _to_grid(source: Grid, target: Grid, arithmetic: Arithmetic):
     """centred integers on `source` -> integers on `target` (identity + zero point when equal)."""
     if source.same_as(target):
-        return lambda centred: np.clip(centred + target.z, target.low, target.high).astype(np.int32), None
+        dtype = storage_dtype(target.low, target.high)
+        return lambda centred: np.clip(centred + target.z, target.low, target.high).astype(dtype), None
     m0, shift = arithmetic.multipliers(source.s / target.s)
     requantize = arithmetic.requantizer(m0, shift, target.z, target.low, target.high)
     return requantize, requantization_record(m0, shift)
