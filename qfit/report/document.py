@@ -401,17 +401,41 @@ def what_if_section(report: dict) -> Section:
     flash = what_if.get("flash") or {}
     if flash.get("largest_layers"):
         over = flash.get("over_limit_bytes")
-        lines.append(f"What would make flash fit: it is {fmt.size(over)} over the limit; the layers that dominate it:"
-                     if over else "Flash fits already; the layers that dominate it:")
+        if over:
+            lines.append(f"What would make flash fit: it is {fmt.size(over)} over the limit.")
+            lines += _flash_fit_lines(flash)
+        lines.append("The layers that dominate flash:" if over else "Flash fits already; the layers that dominate it:")
         rows = []
         for r in flash["largest_layers"]:
             change = (f"as int8 saves {fmt.size(r['if_int8_saves_bytes'])}" if "if_int8_saves_bytes" in r else
                       f"kept float costs {fmt.size(r['if_float_costs_bytes'])}" if "if_float_costs_bytes" in r
                       else fmt.MISSING)
+            # over the limit, what would shrink it replaces what a float fallback would cost
+            shrink = [_size_or_missing(r.get(key)) for key in ("if_4bit_frees_bytes", "if_half_width_frees_bytes")]
+            shrink = shrink if over else [change]
             rows.append([fmt.short_name(r["name"]), r["op_type"], r["precision"], fmt.size(r["total_bytes"]),
-                         fmt.pct1(r["share_pct"]), change])
-        tables.append(Table(["layer", "op", "stored as", "bytes", "share", "change"], rows))
+                         fmt.pct1(r["share_pct"]), *shrink])
+        tables.append(Table(["layer", "op", "stored as", "bytes", "share",
+                             *(["4-bit frees (est.)", "half width frees (est.)"] if over else ["change"])], rows))
     return Section("what_if", lines, tables)
+
+
+def _size_or_missing(value) -> str:
+    return fmt.MISSING if value is None else fmt.size(value)
+
+
+def _flash_fit_lines(flash: dict) -> list[str]:
+    """The fewest layers whose weights at 4 bits remove the excess, and what the estimates assume."""
+    lines = []
+    fit = flash.get("fit_at_4bit")
+    if fit and fit["layers"]:
+        names = ", ".join(fmt.short_name(n) for n in fit["layers"][:6]) + (", ..." if len(fit["layers"]) > 6 else "")
+        lines.append(f"4-bit weights in {len(fit['layers'])} layer(s) ({names}) would free "
+                     f"{fmt.size(fit['frees_bytes'])}{'' if fit['enough'] else ': not enough on their own'} "
+                     f"(estimate).")
+    if flash.get("estimate_note"):
+        lines.append(f"Estimates: {flash['estimate_note'].removeprefix('estimates: ')}.")
+    return lines
 
 
 def _sram_what_if(what_if: dict, sram: dict) -> tuple[list[str], Table | None]:

@@ -466,21 +466,35 @@ def _flash_what_if(f: Figures) -> str:
     if not rows:
         return ""
     out = ["<h3>Flash: the layers that dominate</h3>"]
-    if f.get("what_if.flash.over_limit_bytes"):
+    over = bool(f.get("what_if.flash.over_limit_bytes"))
+    if over:
         out.append(f'<p>Flash is {f.text("what_if.flash.over_limit_bytes", "size")} over the limit.</p>')
+        fit = f.get("what_if.flash.fit_at_4bit") or {}
+        if fit.get("layers"):
+            out.append(f'<p>4-bit weights in {len(fit["layers"])} layer(s) would free '
+                       f'{f.text("what_if.flash.fit_at_4bit.frees_bytes", "size")}'
+                       f'{"" if fit.get("enough") else ": not enough on their own"} (estimate).</p>')
+        if f.has("what_if.flash.estimate_note"):
+            out.append(f'<p class="small">{f.text("what_if.flash.estimate_note", "text")}.</p>')
+    # over the limit, what would shrink each layer replaces what a float fallback would cost
+    last = ('<th class="num">4-bit frees (est.)</th><th class="num">half width frees (est.)</th>' if over
+            else "<th>change</th>")
     out.append('<table><thead><tr><th>layer</th><th>op</th><th>stored as</th><th class="num">bytes</th>'
-               '<th class="num">share</th><th>change</th></tr></thead><tbody>')
+               f'<th class="num">share</th>{last}</tr></thead><tbody>')
     for i, row in enumerate(rows):
         p = lambda k: path_join("what_if", "flash", "largest_layers", i, k)
-        if "if_int8_saves_bytes" in row:
-            change = f'as int8 saves {f.text(p("if_int8_saves_bytes"), "size")}'
+        if over:
+            change = (f.maybe(p("if_4bit_frees_bytes"), "size", "td", "num")
+                      + f.maybe(p("if_half_width_frees_bytes"), "size", "td", "num"))
+        elif "if_int8_saves_bytes" in row:
+            change = f'<td>as int8 saves {f.text(p("if_int8_saves_bytes"), "size")}</td>'
         elif "if_float_costs_bytes" in row:
-            change = f'kept float costs {f.text(p("if_float_costs_bytes"), "size")}'
+            change = f'<td>kept float costs {f.text(p("if_float_costs_bytes"), "size")}</td>'
         else:
-            change = MISSING
+            change = f"<td>{MISSING}</td>"
         out.append(f'<tr>{f.text(p("name"), "text", "td", "name")}{f.maybe(p("op_type"), "text", "td")}'
                    f'{f.maybe(p("precision"), "text", "td")}{f.text(p("total_bytes"), "size", "td", "num")}'
-                   f'{f.maybe(p("share_pct"), "pct1", "td", "num")}<td>{change}</td></tr>')
+                   f'{f.maybe(p("share_pct"), "pct1", "td", "num")}{change}</tr>')
     out.append("</tbody></table>")
     return "\n".join(out)
 
