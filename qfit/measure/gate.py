@@ -79,6 +79,9 @@ def accuracy_gate(accuracy: dict, gate: GateOptions) -> dict:
         limit = f"{'default ' if source == 'default' else ''}limit {target:g} pt"
         label = f"upper end of the {what}'s 95 % interval" if section["compares"] == "upper bound" else what
         section["reason"] = f"{label} {compared:.2f} pt {'<=' if section['passed'] else '>'} {limit}"
+        if section["compares"] == "estimate" and upper is not None:
+            section["reason"] += (f"; the upper end of its 95 % interval, {upper:.2f} pt, is "
+                                  f"{'inside' if section['upper_within_gate'] else 'outside'} the limit")
     return section
 
 
