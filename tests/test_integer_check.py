@@ -108,3 +108,25 @@ def test_each_conv_and_gemm_lists_multipliers_that_represent_its_scales(runs):
             assert abs(Fraction(m0) * Fraction(2) ** (shift - 31) - real) <= Fraction(2) ** (shift - 32)
         checked += 1
     assert checked >= 3
+
+
+def test_unknown_arithmetic_or_rounding_is_refused_in_one_line(tmp_path, capsys):
+    from qfit.check import CheckOptions, check
+    from qfit.errors import QfitError
+
+    for field, value, flag in (("arithmetic", "fixed", "--arithmetic"), ("rounding", "triple", "--rounding")):
+        options = CheckOptions(model_path=str(MODEL), calib_dir=str(tmp_path), out_dir=str(tmp_path / "out"),
+                               flash_limit_bytes=1 << 20, sram_limit_bytes=1 << 20, **{field: value})
+        with pytest.raises(QfitError) as refused:
+            check(options)
+        assert str(refused.value).startswith(flag) and value in str(refused.value)
+        assert "\n" not in str(refused.value)
+    assert not (tmp_path / "out").exists()
+    # the command line refuses the value before any work: one line, exit 2, nothing written
+    capsys.readouterr()
+    code = cli.main(["check", str(MODEL), "--calib", str(tmp_path), "--out", str(tmp_path / "out"), "--flash", "1MiB",
+                     "--sram", "1MiB", "--rounding", "triple"])
+    assert code == 2
+    err = capsys.readouterr().err.strip()
+    assert "--rounding" in err and "triple" in err and "\n" not in err
+    assert not (tmp_path / "out").exists()
