@@ -473,7 +473,10 @@ def repair_search(options: CheckOptions, planned: Planned, quantized: Quantized,
                           "candidates_screened": found.candidates_screened,
                           "candidates_verified": found.candidates_verified,
                           "screen_samples": found.screen_samples,
-                          "extra_calibration_passes": quantizer.extra_calibration_passes},
+                          "extra_calibration_passes": quantizer.extra_calibration_passes,
+                          # candidates are screened on the float preview; the written model is re-measured
+                          # in the selected arithmetic (repair_stage)
+                          "evaluation_path": integer.evaluation_path("float", options.rounding)},
                "refused": found.refused}
     return section, (found.options if found.steps else None)
 
