@@ -299,7 +299,8 @@ def sensitivity_section(report: dict, compact: bool) -> Section:
              f"{section['samples_used']} of {section['samples_available']} evaluation samples (cap "
              f"{section['sample_cap']}); byte costs against the all-int8 plan. Worst first."]
     lines += [text for text in (section.get("ranked_by") and f"Ranked by {section['ranked_by']}; ± one standard "
-                                f"error over the samples.", section.get("points_note")) if text]
+                                f"error over the samples.", section.get("samples_note") and
+                                f"Sample count: {section['samples_note']}.", section.get("points_note")) if text]
     return Section("sensitivity", lines, ranking_tables(report, RANKED_LAYERS_SHOWN if compact else None))
 
 
