@@ -531,7 +531,7 @@ def verdict_stage(options: CheckOptions, final: Repaired) -> Verdict:
     """Flash, SRAM and the accuracy gate (qfit.measure.gate: a default limit without --max-drop)."""
     fits_flash, fits_sram = final.budget.result.flash_fits, final.budget.result.sram_fits
     failed = [name for name, fits in (("flash", fits_flash), ("sram", fits_sram)) if not fits]
-    judged = gates.judge(final.evaluation.accuracy, gate_options(options))
+    judged = gates.judge(final.evaluation.accuracy, gate_options(options), options.method)
     failed += judged["failed"]
     return Verdict(fits_flash, fits_sram, judged["accuracy_ok"], judged["accuracy_gate"]["max_drop_pt"], failed,
                    1 if failed else 0, judged["accuracy_gate"], judged["float_check"], judged["warnings"])

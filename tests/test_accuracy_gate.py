@@ -48,6 +48,8 @@ def test_without_max_drop_the_default_gate_fails_a_drop_over_two_points():
     assert judged["accuracy_gate"]["max_drop_pt"] == DEFAULT_MAX_DROP_PT == 2.0
     assert judged["failed"] == ["accuracy"] and not judged["accuracy_ok"]
     assert "default limit 2 pt" in judged["accuracy_gate"]["reason"]
+    assert "compare with --method minmax" in judge(accuracy, GateOptions(), "entropy")["accuracy_gate"]["reason"]
+    assert "--method" not in judge(accuracy, GateOptions(), "minmax")["accuracy_gate"]["reason"]
     assert judge(_accuracy(558, 552), GateOptions())["accuracy_ok"]            # 1 pt: passes
     off = judge(accuracy, GateOptions(enabled=False))
     assert off["accuracy_ok"] and off["failed"] == [] and off["accuracy_gate"]["source"] == "off"

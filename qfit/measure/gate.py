@@ -120,10 +120,17 @@ def accuracy_warnings(accuracy: dict) -> list[str]:
     return warnings
 
 
-def judge(accuracy: dict, gate: GateOptions) -> dict:
+CLIPPING_METHODS = ("percentile", "mse", "entropy")  # calibration methods that may clip ranges
+
+
+def judge(accuracy: dict, gate: GateOptions, method: str | None = None) -> dict:
     """The accuracy part of the verdict: {"accuracy_ok", "failed", "accuracy_gate", "float_check",
-    "warnings"}; "failed" lists "accuracy" and/or "float_accuracy"."""
+    "warnings"}; "failed" lists "accuracy" and/or "float_accuracy". `method`: the calibration method,
+    named in the reason when the gate fails and the method clips ranges."""
     section = accuracy_gate(accuracy, gate)
+    if section["passed"] is False and method in CLIPPING_METHODS:
+        section["reason"] += (f"; --method {method} clips ranges: compare with --method minmax "
+                              f"(every method reads the same calibration statistics)")
     expected = float_check(accuracy, gate)
     failed = []
     if section["passed"] is False:
