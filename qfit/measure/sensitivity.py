@@ -167,7 +167,7 @@ def _fixed_nodes(switch: SwitchModel, on: set[str]) -> list[onnx.NodeProto]:
     switches = set(switch.switches)
     nodes = []
     for node in switch.model.graph.node:
-        if node.op_type == "Where" and node.input[0] in switches:
+        if node.input and node.input[0] in switches:   # only the switch Where nodes read a switch
             chosen = node.input[1] if node.input[0] in on else node.input[2]
             nodes.append(helper.make_node("Identity", [chosen], [node.output[0]], name=node.name))
         else:
@@ -270,7 +270,7 @@ def find_cuts(switch: SwitchModel, rows: list[str]) -> Cuts:
             readers.setdefault(x, []).append(i)
     first_touch = {}
     for i, node in enumerate(nodes):
-        if node.op_type != "Where" or node.input[0] not in switch.switches:
+        if not node.input or node.input[0] not in switch.switches:   # not a switch Where
             continue
         if node.output[0] in constant:   # a weight switch: its effect starts at the nodes reading the weight
             touched = readers.get(node.output[0], [i])
