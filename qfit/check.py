@@ -546,4 +546,8 @@ def check_analysis_options(options: CheckOptions) -> None:
                         ("--repair-samples", options.repair_samples)):
         if value is None or value < 1:
             raise QfitError(f"{flag}: must be a positive number, got {value}")
+    if not 0 < options.percentile <= 100:  # also refused by the CLI; the library keeps its own guard
+        raise QfitError(f"--percentile: must be in (0, 100], got {options.percentile}")
+    if options.seed is None or options.seed < 0:
+        raise QfitError(f"--seed: must be 0 or a positive whole number, got {options.seed}")
     gates.check_gate_options(gate_options(options))

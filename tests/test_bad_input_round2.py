@@ -133,6 +133,32 @@ def test_bad_input_check_numeric_option(tmp_path, capfd, model, calib, args, fra
     assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out", fragment)
 
 
+def test_bad_input_no_command_is_one_line(tmp_path, capfd):
+    assert_refused(capfd, [], tmp_path / "none", "no command given: choose one of check, budget, export")
+
+
+@pytest.mark.parametrize("value", ["-1", "1e9", "nan"])
+def test_bad_input_order_time_limit_outside_its_range(tmp_path, capfd, model, value):
+    assert_refused(capfd, ["budget", model, *SIZES, "--order-time-limit", value], tmp_path / "none",
+                   "--order-time-limit: must be")
+
+
+@pytest.mark.parametrize("field, value, fragment", [
+    ("percentile", 150.0, "--percentile: must be in (0, 100], got 150.0"),
+    ("percentile", float("nan"), "--percentile: must be in (0, 100], got nan"),
+    ("seed", -3, "--seed: must be 0 or a positive whole number, got -3")])
+def test_bad_input_library_refuses_what_the_cli_refuses(tmp_path, model, calib, field, value, fragment):
+    """The library keeps its own guard: a caller of qfit.check.check gets the same one-line QfitError."""
+    from qfit import check as check_module
+    from qfit.errors import QfitError
+    options = check_module.CheckOptions(model_path=model, calib_dir=calib, out_dir=str(tmp_path / "out"),
+                                        flash_limit_bytes=1 << 20, sram_limit_bytes=1 << 18, **{field: value})
+    with pytest.raises(QfitError) as refused:
+        check_module.check(options)
+    assert fragment in str(refused.value)
+    assert not (tmp_path / "out").exists()
+
+
 @pytest.mark.parametrize("args, fragment", [
     (["--cycles-per-mac", "nan", "--clock-mhz", "100"], "--cycles-per-mac: must be a finite number, got nan"),
     (["--cycles-per-mac", "1", "--clock-mhz", "inf"], "--clock-mhz: must be a finite number, got inf"),

@@ -6,6 +6,7 @@ import argparse
 import dataclasses
 
 from qfit.errors import QfitError
+from qfit.memory.options import MAX_ORDER_TIME_LIMIT_S
 
 
 def default_of(options_class, name: str):
@@ -40,7 +41,8 @@ def arena_options(args: argparse.Namespace) -> dict:
     """The BudgetOptions fields `add_arena_options` sets, refused in one line when out of range."""
     if args.alignment < 1 or args.alignment & (args.alignment - 1):
         raise QfitError(f"--alignment: must be a power of two, got {args.alignment}")
-    if args.order_time_limit < 0:
-        raise QfitError(f"--order-time-limit: must be >= 0 seconds, got {args.order_time_limit}")
+    if not 0 <= args.order_time_limit <= MAX_ORDER_TIME_LIMIT_S:
+        raise QfitError(f"--order-time-limit: must be between 0 and {MAX_ORDER_TIME_LIMIT_S:g} seconds, "
+                        f"got {args.order_time_limit}")
     return dict(alignment=args.alignment, views=not args.no_views, inplace=not args.no_inplace,
                 order_search=not args.no_order_search, order_time_limit_s=args.order_time_limit)

@@ -94,8 +94,7 @@ def main(argv: list[str] | None = None) -> int:
         boundary.check_options(args)
         commands = _commands()
         if args.command not in commands:
-            parser.print_help()
-            return EXIT_BAD_INPUT
+            raise QfitError(f"no command given: choose one of {', '.join(commands)} (qfit --help)")
         return commands[args.command].run(args)
     except QfitError as e:
         print(f"qfit: error: {_one_line(boundary.user_message(str(e)))}", file=sys.stderr)

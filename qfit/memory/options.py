@@ -11,6 +11,10 @@ LABELS = {"flash_limit_bytes": "the flash limit (--flash)", "sram_limit_bytes": 
           "cycles_per_mac": "cycles per MAC (--cycles-per-mac)", "clock_mhz": "the clock (--clock-mhz)",
           "energy_per_mac_pj": "energy per MAC (--energy-per-mac-pj)"}
 
+# The exact search is exponential; past a few minutes it only stalls a CI job (the heuristic
+# result is kept when the limit is reached), so a longer limit is refused rather than waited for.
+MAX_ORDER_TIME_LIMIT_S = 600.0
+
 
 @dataclass
 class BudgetOptions:
@@ -23,7 +27,7 @@ class BudgetOptions:
     inplace: bool = True                   # elementwise op overwrites an input nobody else reads
     scratch: bool = False                  # im2col-style scratch for convolutions (an estimate)
     order_search: bool = True
-    order_time_limit_s: float = 2.0
+    order_time_limit_s: float = 2.0        # at most MAX_ORDER_TIME_LIMIT_S
     cycles_per_mac: float | None = None    # latency estimate = MACs * cycles_per_mac / clock
     clock_mhz: float | None = None
     energy_per_mac_pj: float | None = None
@@ -39,8 +43,9 @@ class BudgetOptions:
             raise QfitError("budget: flash reserve and per-layer metadata bytes cannot be negative")
         if self.alignment < 1 or self.alignment & (self.alignment - 1):
             raise QfitError(f"budget: alignment must be a power of two (1, 2, 4, 8, ...), got {self.alignment}")
-        if self.order_time_limit_s < 0:
-            raise QfitError(f"budget: order time limit must be >= 0 s, got {self.order_time_limit_s}")
+        if not 0 <= self.order_time_limit_s <= MAX_ORDER_TIME_LIMIT_S:
+            raise QfitError(f"budget: order time limit must be between 0 and {MAX_ORDER_TIME_LIMIT_S:g} s, "
+                            f"got {self.order_time_limit_s}")
         for name in ("cycles_per_mac", "clock_mhz", "energy_per_mac_pj"):
             value = getattr(self, name)
             if value is not None and not (value > 0 and math.isfinite(value)):
