@@ -219,6 +219,25 @@ def test_sweep_models_compute_each_configuration_as_the_switch_model_defines_it(
         assert np.array_equal(got[groups[-1].names[("int8", "y")]], _switch_model_run(switch, x, everything))
 
 
+def test_the_sweep_gives_the_same_figures_in_batches_and_sample_by_sample(monkeypatch):
+    # Batches of 4 run the batch-free sweep models; batch 1 runs sample by sample (the path of a graph
+    # that hard-codes its batch); a tiny SWEEP_BATCH_BYTES forces the byte cap down to one sample.
+    rng = np.random.default_rng(5)
+    xs = [rng.normal(0, 1, (1, 3, 8, 8)).astype(np.float32) for _ in range(8)]
+    loaded, plan, quantized = _quantized(_conv_chain(), xs)
+    layers = compared_layers(loaded, plan)
+    batched = sensitivity.sweep(loaded, plan, quantized, layers, _Samples(xs), 4, "score", sample_cap=8)
+    single = sensitivity.sweep(loaded, plan, quantized, layers, _Samples(xs), 1, "score", sample_cap=8)
+    monkeypatch.setattr(sensitivity, "SWEEP_BATCH_BYTES", 1)
+    capped = sensitivity.sweep(loaded, plan, quantized, layers, _Samples(xs), 4, "score", sample_cap=8)
+    for other in (single, capped):
+        assert other["ranking"] == batched["ranking"] and other["samples_used"] == 8
+        for name, row in batched["rows"].items():
+            for key, value in row.items():
+                if isinstance(value, float):
+                    assert other["rows"][name][key] == pytest.approx(value, abs=0.02), (name, key)
+
+
 def _exact_two_sided_sign_test(worse: int, better: int) -> Fraction:
     """p-value of the exact sign test, from binomial coefficients in exact arithmetic (McNemar 1947,
     exact form: under no effect each discordant sample goes either way with probability 1/2)."""
