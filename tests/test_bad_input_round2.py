@@ -453,3 +453,442 @@ def test_bad_input_a_peak_of_zero_or_less_never_fits(tmp_path, required_bytes):
     _, live, _ = sram.sram_for(memory, options)
     assert sram.sram_section(memory, live, options, live.peak_bytes)["fits"] is True  # the real peak fits
     assert sram.sram_section(memory, live, options, required_bytes)["fits"] is False
+
+
+# ------------------------------------------------------------------------------ 4. round three: gates, class
+# order, preprocessing, export, commands (docs/bad-input.md, "Round three"). Every message was taken
+# from a real run of the CLI; each row of the doc's round-three tables is one case here.
+
+def class_folders(folder, names):
+    for k, name in enumerate(names):
+        npy_folder(os.path.join(folder, name), count=2, seed=k + 1)
+    return str(folder)
+
+
+def csv_eval(tmp_path, text):
+    """A flat evaluation folder s0.npy..s3.npy and a labels CSV holding `text`."""
+    folder = npy_folder(tmp_path / "ev")
+    for i in range(4):
+        os.rename(os.path.join(folder, f"sample_{i:03d}.npy"), os.path.join(folder, f"s{i}.npy"))
+    labels = tmp_path / "labels.csv"
+    labels.write_text(text)
+    return ["--eval", folder, "--labels", labels]
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--expect-float", "150"], "--expect-float: must be a top-1 accuracy in percent (0 to 100), got 150.0"),
+    (["--expect-float", "-1"], "--expect-float: must be a top-1 accuracy in percent (0 to 100), got -1.0"),
+    (["--expect-float-tolerance", "-1"], "--expect-float-tolerance: must be a number of points >= 0, got -1.0"),
+    (["--expect-float-tolerance", "nan"], "--expect-float-tolerance: must be a finite number, got nan"),
+    (["--expect-float", "90"], "--expect-float: needs labelled evaluation data (class subfolders or --labels); "
+                               "this run has no labels to measure the float top-1 on"),
+])
+def test_bad_input_gate_option(tmp_path, capfd, model, calib, args, fragment):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out", fragment)
+
+
+def test_bad_input_expect_float_with_an_unlabelled_eval_folder(tmp_path, capfd, model, calib):
+    flat = npy_folder(tmp_path / "flat")
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--expect-float", "90", "--eval", flat),
+                   tmp_path / "out", "--expect-float: needs labelled evaluation data")
+
+
+@pytest.mark.parametrize("order, fragment", [
+    ("justone", "--class-order: 'justone' is neither a file nor a comma-separated list of class names"),
+    ("a,,b,c", "--class-order: an empty class name (position 2)"),
+    ("a,a,b,c", "--class-order: class 'a' is listed twice"),
+    ("a,b,c", "--class-order: names 3 classes but the model has 4 outputs"),
+])
+def test_bad_input_class_order_list(tmp_path, capfd, model, calib, order, fragment):
+    evaluation = class_folders(tmp_path / "eval", ["c0", "c1", "c2", "c3"])
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", evaluation, "--class-order", order),
+                   tmp_path / "out", fragment)
+
+
+def test_bad_input_class_order_file_not_utf8(tmp_path, capfd, model, calib):
+    evaluation = class_folders(tmp_path / "eval", ["c0", "c1", "c2", "c3"])
+    order = tmp_path / "order.txt"
+    order.write_bytes(b"a\nb\xff\nc\nd\n")
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", evaluation, "--class-order", order),
+                   tmp_path / "out", f"--class-order: {order}: not UTF-8 text (bad byte at offset 3)")
+
+
+def test_bad_input_subfolder_not_in_the_class_order(tmp_path, capfd, model, calib):
+    evaluation = class_folders(tmp_path / "eval", ["c0", "c1", "c2", "c3"])
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", evaluation,
+                                     "--class-order", "c0,c1,c2,zz"), tmp_path / "out",
+                   f"evaluation data: subfolder 'c3' of {evaluation} is not in the class order (c0, c1, c2, zz)")
+
+
+def test_bad_input_more_class_subfolders_than_classes(tmp_path, capfd, model, calib):
+    evaluation = class_folders(tmp_path / "eval", ["c0", "c1", "c2", "c3", "c4"])
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", evaluation), tmp_path / "out",
+                   f"evaluation data: {evaluation} has 5 class subfolders but the model has 4 classes")
+
+
+@pytest.mark.parametrize("text, extra, fragment", [
+    ("file,label\ns0.npy,cat\ns1.npy,dog\n", [],
+     "labels CSV {csv}: labels are class names (e.g. 'cat') but the order of the model's outputs is not known; "
+     "give it with --class-order (names separated by commas, or a file with one name per line)"),
+    ("file,label\ns0.npy,cat\ns1.npy,dog\n", ["--class-order", "cat,bird,fish,cow"],
+     "labels CSV {csv}: line 3: unknown class 'dog' (classes: cat, bird, fish, cow)"),
+    ("s0.npy,1\ns1.npy,2\ns0.npy,3\n", [], "labels CSV {csv}: line 3: 's0.npy' is listed again (first on line 1)"),
+    ("s0.npy,1,2\n", [], "labels CSV {csv}: line 1: expected 2 fields `file,label`, found 3"),
+    ("s0.npy,\n", [], "labels CSV {csv}: line 1: empty label"),
+    ("file,label\n", [], "labels CSV {csv}: no `file,label` rows"),
+    ("s0.npy," + "9" * 30 + "\n", [], "labels CSV {csv}: line 1: class index " + "9" * 30 + " is too large"),
+    ("s0.npy,-1\n", [], "labels CSV {csv}: line 1: unknown class -1 (expected 0..3)"),
+])
+def test_bad_input_labels_csv_round_three(tmp_path, capfd, model, calib, text, extra, fragment):
+    args = csv_eval(tmp_path, text)
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args, *extra), tmp_path / "out",
+                   fragment.format(csv=tmp_path / "labels.csv"))
+
+
+@pytest.mark.parametrize("args", [["--size", "8x8"], ["--mean", "0.5"]])
+def test_bad_input_preprocessing_options_with_an_array_folder(tmp_path, capfd, model, calib, args):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out",
+                   f"calibration data: {calib} holds .npy/.npz arrays, which are fed to the model as they are; "
+                   "preprocessing options (--preprocess, --size, --color, --layout, --scale, --mean, --std) apply "
+                   "to images only: drop them or preprocess the arrays")
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--size", "8by8"], "--size: cannot read '8by8' (expected HxW, e.g. 96x96)"),
+    (["--mean", "a,b"], "--mean: cannot read 'a,b' as comma-separated numbers"),
+    (["--size", "9x9"], "preprocess: size 9x9 (HxW) does not match model input 'x' (1, 3, 8, 8), which wants 8x8"),
+    (["--mean", "0.1,0.2"], "preprocess: mean has 2 values; expected 1 or 3 (one per channel for color RGB)"),
+    (["--mean", "nan"], "preprocess: key 'mean': expected a number or a non-empty list of numbers, got [NaN]"),
+    (["--color", "L"], "calibration data: model input 'x' (1, 3, 8, 8) has 3 channels in layout NCHW, color L "
+                       "gives 1; the model wants color RGB or BGR"),
+])
+def test_bad_input_image_preprocessing_option(tmp_path, capfd, model, args, fragment):
+    from test_bad_input import write_png
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    assert_refused(capfd, check_args(model, images, tmp_path / "out", *args), tmp_path / "out", fragment)
+
+
+@pytest.mark.parametrize("content, fragment", [
+    ("[1, 2]", "preprocess file {pre}: expected a JSON object with keys like \"size\", \"mean\", \"std\""),
+    ('{"colour": "RGB"}', "preprocess file {pre}: unknown key 'colour' (known keys: size, resize, color, layout, "
+                          "scale, mean, std)"),
+    ('{"scale": "big"}', "preprocess file {pre}: key 'scale': expected a positive number, got \"big\""),
+    ('{"std": [0, 1, 1]}', "preprocess file {pre}: key 'std': every std value must be positive (it divides), "
+                           "got [0, 1, 1]"),
+])
+def test_bad_input_preprocess_file_content(tmp_path, capfd, model, content, fragment):
+    from test_bad_input import write_png
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    pre = tmp_path / "pre.json"
+    pre.write_text(content)
+    assert_refused(capfd, check_args(model, images, tmp_path / "out", "--preprocess", pre), tmp_path / "out",
+                   fragment.format(pre=pre))
+
+
+def test_bad_input_folder_mixing_images_and_arrays(tmp_path, capfd, model):
+    from test_bad_input import write_png
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    np.save(images / "c.npy", np.zeros((1, 3, 8, 8), np.float32))
+    assert_refused(capfd, check_args(model, images, tmp_path / "out"), tmp_path / "out",
+                   f"calibration data: {images} mixes images and arrays (e.g. a.png and c.npy); use one kind per folder")
+
+
+def test_bad_input_npz_without_the_input_key(tmp_path, capfd, model):
+    folder = tmp_path / "npz"
+    folder.mkdir()
+    np.savez(folder / "a.npz", y=np.zeros((1, 3, 8, 8), np.float32), z=np.zeros((1, 3, 8, 8), np.float32))
+    assert_refused(capfd, check_args(model, folder, tmp_path / "out"), tmp_path / "out",
+                   f"calibration data: {folder}/a.npz: no key for input(s) x; keys y, z are not model inputs "
+                   "(model inputs: x)")
+
+
+def test_bad_input_every_file_bad_with_skip_bad(tmp_path, capfd, model):
+    folder = tmp_path / "allbad"
+    folder.mkdir()
+    (folder / "a.png").write_bytes(b"no")
+    assert_refused(capfd, check_args(model, folder, tmp_path / "out", "--skip-bad"), tmp_path / "out",
+                   f"calibration data: no readable files in {folder} (1 skipped as bad, first: a.png: cannot read image")
+
+
+@pytest.mark.parametrize("flag, what", [("--calib", "calibration data"), ("--eval", "evaluation data")])
+def test_bad_input_data_folder_is_a_file(tmp_path, capfd, model, calib, flag, what):
+    a_file = tmp_path / "afile"
+    a_file.write_text("x")
+    args = check_args(model, a_file, tmp_path / "out") if flag == "--calib" else \
+        check_args(model, calib, tmp_path / "out", "--eval", a_file)
+    assert_refused(capfd, args, tmp_path / "out", f"{what}: {a_file}: not a folder")
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--arithmetic", "fixed"], "qfit check: argument --arithmetic: invalid choice: 'fixed' "
+                                "(choose from 'integer', 'float')"),
+    (["--rounding", "triple"], "qfit check: argument --rounding: invalid choice: 'triple' "
+                               "(choose from 'double', 'single')"),
+    (["--isolated-samples", "-1"], "--isolated-samples: must be 0 (skip the sweep) or a positive number, got -1"),
+    (["--repair-layers", "0"], "--repair-layers: must be a positive number, got 0"),
+    (["--repair-steps", "0"], "--repair-steps: must be a positive number, got 0"),
+    (["--repair-samples", "0"], "--repair-samples: must be a positive number, got 0"),
+    (["--batch", "0"], "--batch: must be more than 0 and at most 65536, got 0"),
+    (["--batch", "100000000"], "--batch: must be more than 0 and at most 65536, got 100000000"),
+    (["--limit", "-3"], "calibration data: limit must be a positive number of samples, got -3"),
+    (["--input-shape", "x=0x3x8x8"], "--input-shape: 'x=0x3x8x8' has a dimension that is not positive"),
+    (["--input-shape", "x=2x3x8x8"], "--input-shape: input 'x' dimension 0 is fixed at 1 in the model, "
+                                     "the override gives 2"),
+    (["--method", ""], "--method: unknown method '' (choose from minmax, percentile, mse, entropy)"),
+])
+def test_bad_input_check_option_round_three(tmp_path, capfd, model, calib, args, fragment):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out", fragment)
+
+
+def test_bad_input_eval_limit_not_positive(tmp_path, capfd, model, calib):
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", calib, "--eval-limit", "0"),
+                   tmp_path / "out", "evaluation data: limit must be a positive number of samples, got 0")
+
+
+def test_bad_input_library_refuses_an_unknown_arithmetic_or_rounding():
+    """Through the library the same check names the option (argparse refuses first on the command line)."""
+    from qfit.errors import QfitError
+    from qfit.measure import integer
+    with pytest.raises(QfitError, match=r"^--arithmetic: unknown arithmetic 'fixed' \(choose from integer, float\)$"):
+        integer.check_arithmetic_options("fixed", "double")
+    with pytest.raises(QfitError, match=r"^--rounding: unknown rounding 'triple' \(choose from double, single\)$"):
+        integer.check_arithmetic_options("integer", "triple")
+
+
+PREFIX_MESSAGE = "is not a C identifier of letters, digits and single underscores, starting with a letter, at most 24 characters"
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--prefix", "1bad"], f"--prefix: '1bad' {PREFIX_MESSAGE}"),
+    (["--prefix", "a__b"], f"--prefix: 'a__b' {PREFIX_MESSAGE}"),
+    (["--prefix", "a" * 25], f"--prefix: '{'a' * 25}' {PREFIX_MESSAGE}"),
+    (["--export-alignment", "0"], "--export-alignment: must be a power of two from 1 to 4096, got 0"),
+    (["--export-alignment", "3"], "--export-alignment: must be a power of two from 1 to 4096, got 3"),
+    (["--export-alignment", "8192"], "--export-alignment: must be a power of two from 1 to 4096, got 8192"),
+    (["--alignment", "3"], "--alignment: must be a power of two, got 3"),
+])
+def test_bad_input_export_option(tmp_path, capfd, model, args, fragment):
+    assert_refused(capfd, ["export", model, "--out", tmp_path / "exp", *args], tmp_path / "exp", fragment)
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--prefix", "1bad"], f"--prefix: '1bad' {PREFIX_MESSAGE}"),
+    (["--export-alignment", "3"], "--export-alignment: must be a power of two from 1 to 4096, got 3"),
+])
+def test_bad_input_check_export_option(tmp_path, capfd, model, calib, args, fragment):
+    out = tmp_path / "out"
+    assert_refused(capfd, check_args(model, calib, out, "--export", tmp_path / "exp", *args), tmp_path / "exp",
+                   fragment)
+    assert not out.exists()
+
+
+def test_bad_input_check_export_folder_is_a_file(tmp_path, capfd, model, calib):
+    a_file = tmp_path / "afile"
+    a_file.write_text("x")
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--export", a_file), tmp_path / "out",
+                   f"--export: {a_file} exists and is not a folder")
+    assert a_file.read_text() == "x"
+
+
+def test_bad_input_export_of_a_float_model(tmp_path, capfd, model):
+    assert_refused(capfd, ["export", model, "--out", tmp_path / "exp"], tmp_path / "exp",
+                   f"export: {model}: not a QDQ model (no QuantizeLinear/DequantizeLinear); "
+                   "quantize it first with qfit check")
+
+
+def test_bad_input_export_out_is_a_file(tmp_path, capfd, model):
+    a_file = tmp_path / "afile"
+    a_file.write_text("x")
+    assert_refused(capfd, ["export", model, "--out", a_file], a_file, f"--out: {a_file} exists and is not a folder")
+
+
+def test_bad_input_export_missing_model(tmp_path, capfd):
+    assert_refused(capfd, ["export", tmp_path / "nope.onnx", "--out", tmp_path / "exp"], tmp_path / "exp",
+                   f"model: {tmp_path / 'nope.onnx'}: no such file")
+
+
+def test_bad_input_export_would_overwrite_its_input(tmp_path, capfd, model, calib):
+    code, _, err, _ = run_qfit(capfd, check_args(model, calib, tmp_path / "q", "--no-accuracy-gate"))
+    assert code == 0, err
+    folder = tmp_path / "m"
+    folder.mkdir()
+    int8 = folder / "qmodel.json"  # the int8 model under the name the manifest would take
+    int8.write_bytes(file_bytes(tmp_path / "q" / "net_int8.onnx"))
+    before = file_bytes(int8)
+    assert_refused(capfd, ["export", int8, "--out", folder], folder,
+                   f"--out: writing {int8} would overwrite the input model {int8}")
+    assert file_bytes(int8) == before
+
+
+def test_bad_input_check_export_of_an_operator_the_export_lacks(tmp_path, capfd, calib):
+    rng = np.random.default_rng(0)
+    weight = numpy_helper.from_array((rng.standard_normal((4, 3, 3, 3)) * 0.3).astype(np.float32), "w")
+    graph = helper.make_graph(
+        [helper.make_node("Conv", ["x", "w"], ["c"], pads=[1, 1, 1, 1]), helper.make_node("Sigmoid", ["c"], ["s"]),
+         helper.make_node("GlobalAveragePool", ["s"], ["p"]), helper.make_node("Flatten", ["p"], ["y"])], "sig",
+        [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, 3, 8, 8])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, [1, 4])], [weight])
+    path = _save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), tmp_path / "sig.onnx")
+    out = tmp_path / "out"
+    message = assert_refused(capfd, check_args(path, calib, out, "--no-accuracy-gate", "--export", tmp_path / "exp"),
+                             tmp_path / "exp", f"export: {out}/sig_int8.onnx: layer 'Sigmoid_1' (Sigmoid) has no "
+                             "layer kind in the export (exported: Add, AveragePool, Clip, Concat, Conv,")
+    assert "Relu" in message
+    assert not out.exists()  # the int8 model named in the message is not written either
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--alignment", "3"], "--alignment: must be a power of two, got 3"),
+    (["--cycles-per-mac", "2"], "--cycles-per-mac and --clock-mhz go together (latency = MACs x cycles / clock)"),
+    (["--meta-bytes-per-layer", "-1"], "--meta-bytes-per-layer: must be >= 0, got -1"),
+    (["--flash-reserve", "-1"], "--flash-reserve: cannot read '-1' as a size (use bytes, or a number with KiB/MiB/k/M)"),
+    (["--order-time-limit", "601"], "--order-time-limit: must be between 0 and 600 seconds, got 601.0"),
+    (["--order-time-limit", "-1"], "--order-time-limit: must be at least 0, got -1.0"),
+])
+def test_bad_input_budget_option_round_three(tmp_path, capfd, model, args, fragment):
+    assert_refused(capfd, ["budget", model, *SIZES, *args], tmp_path / "none", fragment)
+
+
+@pytest.mark.parametrize("flash, fragment", [
+    ("1.5", "--flash: '1.5' is not a whole number of bytes"),
+    ("1" * 60, "--flash: '" + "1" * 40 + "...' has too many digits to be a size"),
+])
+def test_bad_input_size_not_whole_or_too_long(tmp_path, capfd, model, flash, fragment):
+    assert_refused(capfd, ["budget", model, "--flash", flash, "--sram", "1KiB"], tmp_path / "none", fragment)
+
+
+def test_bad_input_budget_json_is_a_folder_or_in_a_missing_one(tmp_path, capfd, model):
+    assert_refused(capfd, ["budget", model, *SIZES, "--json", tmp_path], tmp_path / "none",
+                   f"--json: {tmp_path} is a folder; give a file name")
+    missing = tmp_path / "nodir" / "x.json"
+    assert_refused(capfd, ["budget", model, *SIZES, "--json", missing], tmp_path / "nodir",
+                   f"--json: folder {tmp_path / 'nodir'} does not exist")
+
+
+def _tiny_model(path, inputs, output_dims, nodes, opset_domain=""):
+    graph = helper.make_graph(nodes, "tiny", inputs, [helper.make_tensor_value_info("y", TensorProto.FLOAT, output_dims)])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid(opset_domain, 17)])
+    model.ir_version = 9
+    with open(path, "wb") as f:  # no checker on save: these models are meant to be refused
+        f.write(model.SerializeToString())
+    return str(path)
+
+
+def _float_input(name, dims):
+    return helper.make_tensor_value_info(name, TensorProto.FLOAT, dims)
+
+
+def test_bad_input_model_file_with_no_graph(tmp_path, capfd):
+    path = tmp_path / "nograph.onnx"
+    path.write_bytes(onnx.ModelProto(ir_version=9, producer_name="x").SerializeToString())
+    assert_refused(capfd, ["budget", path, *SIZES], tmp_path / "none",
+                   f"model: {path}: not an ONNX model (no graph in the file)")
+
+
+def test_bad_input_model_with_no_operators(tmp_path, capfd):
+    graph = helper.make_graph([], "empty", [_float_input("x", [1, 3, 8, 8])], [_float_input("x", [1, 3, 8, 8])])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 9
+    path = _save(model, tmp_path / "noops.onnx")
+    assert_refused(capfd, ["budget", path, *SIZES], tmp_path / "none",
+                   f"model: {path}: has no operators; there is nothing to quantize")
+
+
+def test_bad_input_model_input_that_is_not_a_tensor(tmp_path, capfd):
+    sequence = helper.make_tensor_sequence_value_info("x", TensorProto.FLOAT, [1, 3])
+    path = _tiny_model(tmp_path / "seq.onnx", [sequence], [],
+                       [helper.make_node("SequenceLength", ["x"], ["n"]), helper.make_node("Cast", ["n"], ["y"], to=1)])
+    assert_refused(capfd, ["budget", path, *SIZES], tmp_path / "none", f"model: {path}: input 'x' is not a tensor")
+
+
+def test_bad_input_batchnorm_folding_that_overflows_float32(tmp_path, capfd):
+    inits = [numpy_helper.from_array(np.ones((3, 3, 1, 1), np.float32), "w"),
+             numpy_helper.from_array(np.full(3, 1e30, np.float32), "sc"),
+             numpy_helper.from_array(np.zeros(3, np.float32), "bb"),
+             numpy_helper.from_array(np.zeros(3, np.float32), "mu"),
+             numpy_helper.from_array(np.full(3, 1e-30, np.float32), "var")]
+    graph = helper.make_graph(
+        [helper.make_node("Conv", ["x", "w"], ["c"]),
+         helper.make_node("BatchNormalization", ["c", "sc", "bb", "mu", "var"], ["y"], name="bn", epsilon=0.0)],
+        "bn", [_float_input("x", [1, 3, 8, 8])], [_float_input("y", [1, 3, 8, 8])], inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 9
+    path = _save(model, tmp_path / "bnbig.onnx")
+    assert_refused(capfd, ["budget", path, *SIZES], tmp_path / "none",
+                   f"model: {path}: folding BatchNormalization 'bn' gives values outside the float32 range "
+                   "(check its scale, mean and variance)")
+
+
+def _two_input_model(tmp_path):
+    return _tiny_model(tmp_path / "two.onnx", [_float_input("a", [1, 3, 8, 8]), _float_input("b", [1, 3, 8, 8])],
+                       [1, 3, 8, 8], [helper.make_node("Add", ["a", "b"], ["y"])])
+
+
+def test_bad_input_npy_for_a_two_input_model(tmp_path, capfd, calib):
+    path = _two_input_model(tmp_path)
+    assert_refused(capfd, check_args(path, calib, tmp_path / "out"), tmp_path / "out",
+                   f"calibration data: {calib}/sample_000.npy: a .npy holds one array but the model has 2 inputs "
+                   "(a, b); use .npz files keyed by input name")
+
+
+def test_bad_input_images_for_a_two_input_model(tmp_path, capfd):
+    from test_bad_input import write_png
+    path = _two_input_model(tmp_path)
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    assert_refused(capfd, check_args(path, images, tmp_path / "out"), tmp_path / "out",
+                   f"calibration data: {images} holds images but the model has 2 inputs (a, b); images feed "
+                   "single-input models only, use .npz files keyed by input name")
+
+
+def test_bad_input_images_for_a_flat_input(tmp_path, capfd):
+    from test_bad_input import write_png
+    path = _tiny_model(tmp_path / "flat.onnx", [_float_input("x", [1, 16])], [1, 16],
+                       [helper.make_node("Relu", ["x"], ["y"])])
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    assert_refused(capfd, check_args(path, images, tmp_path / "out"), tmp_path / "out",
+                   "calibration data: images need a 4-D model input (batch, channels, H, W), but input 'x' has "
+                   "shape (1, 16)")
+
+
+def test_bad_input_sixteen_bit_image(tmp_path, capfd):
+    from PIL import Image
+    path = _tiny_model(tmp_path / "gray.onnx", [_float_input("x", [1, 1, 8, 8])], [1, 1, 8, 8],
+                       [helper.make_node("Relu", ["x"], ["y"])])
+    images = tmp_path / "images"
+    images.mkdir()
+    Image.fromarray(np.zeros((8, 8), np.uint16)).save(images / "a.png")
+    assert_refused(capfd, check_args(path, images, tmp_path / "out", "--color", "L"), tmp_path / "out",
+                   f"calibration data: {images}/a.png: image mode I;16 has more than 8 bits per channel; convert it "
+                   "to 8-bit or save the sample as .npy")
+
+
+@pytest.mark.parametrize("second_row, fragment", [
+    (b"/etc/passwd,1", "line 3: '/etc/passwd' is an absolute path; paths are relative to the data folder"),
+    (b"notes.txt,1", "line 3: 'notes.txt': not an image or .npy/.npz file in {calib}"),
+    (b"sam\xffple.npy,1", "not UTF-8 text (bad byte at offset 31)"),
+    (b'"a\x00b.npy",1', "line 3: file path contains a NUL character"),
+])
+def test_bad_input_labels_csv_row_after_a_good_one(tmp_path, capfd, model, calib, second_row, fragment):
+    labels = tmp_path / "labels.csv"
+    labels.write_bytes(b"file,label\nsample_000.npy,1\n" + second_row + b"\n")
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", "--eval", calib, "--labels", labels),
+                   tmp_path / "out", f"labels CSV {labels}: " + fragment.format(calib=calib))
+
+
+@pytest.mark.parametrize("content, fragment", [
+    (b'{"size": "\xff"}', "not UTF-8 text (bad byte at offset 10)"),
+    (b"[" * 100000 + b"]" * 100000, "not valid JSON (nested too deeply)"),
+])
+def test_bad_input_preprocess_file_unreadable_text(tmp_path, capfd, model, content, fragment):
+    from test_bad_input import write_png
+    images = tmp_path / "images"
+    write_png(str(images / "a.png"), 8, 8)
+    pre = tmp_path / "pre.json"
+    pre.write_bytes(content)
+    assert_refused(capfd, check_args(model, images, tmp_path / "out", "--preprocess", pre), tmp_path / "out",
+                   f"preprocess file {pre}: {fragment}")
