@@ -536,6 +536,8 @@ def test_bad_input_more_class_subfolders_than_classes(tmp_path, capfd, model, ca
     ("s0.npy,1,2\n", [], "labels CSV {csv}: line 1: expected 2 fields `file,label`, found 3"),
     ("s0.npy,\n", [], "labels CSV {csv}: line 1: empty label"),
     ("file,label\n", [], "labels CSV {csv}: no `file,label` rows"),
+    # a first row whose file is not a data file is read as a header, so a lone bad row leaves no rows
+    ("/etc/passwd,1\n", [], "labels CSV {csv}: no `file,label` rows"),
     ("s0.npy," + "9" * 30 + "\n", [], "labels CSV {csv}: line 1: class index " + "9" * 30 + " is too large"),
     ("s0.npy,-1\n", [], "labels CSV {csv}: line 1: unknown class -1 (expected 0..3)"),
 ])
