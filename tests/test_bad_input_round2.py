@@ -894,3 +894,15 @@ def test_bad_input_preprocess_file_unreadable_text(tmp_path, capfd, model, conte
     pre.write_bytes(content)
     assert_refused(capfd, check_args(model, images, tmp_path / "out", "--preprocess", pre), tmp_path / "out",
                    f"preprocess file {pre}: {fragment}")
+
+
+@pytest.mark.parametrize("args, fragment", [
+    (["--no-accuracy-gate", "--max-drop", "1"],
+     "--no-accuracy-gate: cannot be combined with --max-drop, which sets the gate it turns off"),
+    (["--no-accuracy-gate", "--gate-upper-bound"],
+     "--no-accuracy-gate: cannot be combined with --gate-upper-bound, which sets the gate it turns off"),
+    (["--prefix", "board"], "--prefix: applies to the C export only; add --export DIR"),
+    (["--export-alignment", "64"], "--export-alignment: applies to the C export only; add --export DIR")])
+def test_bad_input_check_options_that_would_be_ignored(tmp_path, capfd, model, calib, args, fragment):
+    """An option that could not take effect is refused rather than silently dropped."""
+    assert_refused(capfd, check_args(model, calib, tmp_path / "out", *args), tmp_path / "out", fragment)

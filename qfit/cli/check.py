@@ -21,6 +21,7 @@ from qfit.errors import QfitError
 from qfit.graph.load import parse_input_shapes
 from qfit.measure.gate import DEFAULT_MAX_DROP_PT
 from qfit.report.build import build_report
+from qfit.report.export import ExportOptions
 from qfit.report.html import render_html
 from qfit.report.markdown import markdown
 from qfit.report.text import summary_text
@@ -148,6 +149,12 @@ def run(args) -> int:
     options = options_from(args)
     boundary.check_check_outputs(args)
     export_options = export_command.export_options_from(args) if args.export else None
+    if not args.export:
+        given = [flag for flag, value, default in (("--prefix", args.prefix, ExportOptions.prefix),
+                                                   ("--export-alignment", args.export_alignment,
+                                                    ExportOptions.alignment)) if value != default]
+        if given:
+            raise QfitError(f"{given[0]}: applies to the C export only; add --export DIR")
     if args.export:
         files.check_output_folder(args.export, "--export", inputs=[args.calib, args.eval])
     result = check(options)

@@ -33,6 +33,10 @@ def check_gate_options(gate: GateOptions) -> None:
     if gate.max_drop_pt is not None and not math.isfinite(gate.max_drop_pt):
         # a negative target is allowed: it asks int8 to beat float by that many points
         raise QfitError(f"--max-drop: must be a finite number of points, got {gate.max_drop_pt}")
+    if not gate.enabled and (gate.max_drop_pt is not None or gate.on_upper_bound):
+        # contradictory: a limit (or its upper-bound reading) that would never be applied
+        given = "--max-drop" if gate.max_drop_pt is not None else "--gate-upper-bound"
+        raise QfitError(f"--no-accuracy-gate: cannot be combined with {given}, which sets the gate it turns off")
     if gate.expect_float_pt is not None and not 0.0 <= gate.expect_float_pt <= 100.0:
         raise QfitError(f"--expect-float: must be a top-1 accuracy in percent (0 to 100), got {gate.expect_float_pt}")
     if not (math.isfinite(gate.float_tolerance_pt) and gate.float_tolerance_pt >= 0):
