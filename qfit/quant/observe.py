@@ -11,7 +11,9 @@ computed afterwards from those statistics:
               over the histogram (a searched on a grid)
   entropy     the threshold minimising KL(P || Q) between the clipped histogram of |x| and its
               quantized version: the KL-divergence threshold search of Migacz 2017, over every
-              candidate threshold, with exact zeros left out (see _entropy_range for why)
+              candidate threshold, with exact zeros left out, among the thresholds whose expected
+              squared error stays within ENTROPY_ERROR_BOUND of the unclipped range's (see
+              _entropy_range for why)
 """
 from __future__ import annotations
 
@@ -169,16 +171,32 @@ def _mse_range(stats: TensorStats, bits: int, symmetric: bool) -> tuple[float, f
     return best[1] * lo0, best[1] * hi0
 
 
+# The entropy threshold may cost at most this factor (3 dB) in expected squared error over the
+# unclipped range. Quantization noise of independent tensors adds up at the output to first order, so
+# tensors that each stay within 2x of min-max's noise keep the output within 3 dB of min-max's SQNR.
+ENTROPY_ERROR_BOUND = 2.0
+
+
 def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
     """Migacz 2017's KL-divergence threshold search on the histogram of |x| (2048 bins over [0, R]):
     for every candidate threshold of n >= `levels` bins, P is the first n bins with the tail added
     to the last one and Q merges the first n bins (without the tail) into `levels` groups
-    (_kl_quantized); the threshold is the first n reaching the smallest KL(P || Q).
+    (_kl_quantized); the threshold is the first n reaching the smallest KL(P || Q) among the
+    candidates whose expected squared error (_clip_and_round_error) is at most ENTROPY_ERROR_BOUND
+    times the unclipped one's.
 
     Exact zeros are left out of the histogram first. A ReLU or ReLU6 output is often half zeros;
     int8 stores 0 exactly (it is the zero point) at every threshold, yet kept in bin 0 that spike
     is spread over its whole group by Q, which costs less the narrower the groups are. The search
     then chose the smallest candidate ([0, 1] for ReLU6 outputs in [0, 6]) and wrecked the model.
+
+    The error bound, because P moves the clipped tail into its last bin whatever the distance, so KL
+    does not see how far clipping moves values; it only sees the shape of the rest. Where that shape
+    is not a density at bin resolution, the search clips hard: a tensor of a few hundred values (a
+    squeeze-excitation gate, a model output: most bins empty, Q reproduces P at any threshold), or
+    point masses (a constant channel repeats one value at every position of every sample: Q spreads
+    it over its group at a cost that grows with the group width). On a dense histogram the KL
+    minimum lies within the bound and the search is Migacz's unchanged.
     """
     half = HIST_BINS // 2
     positive_only = stats.min >= 0
@@ -195,6 +213,10 @@ def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
     else:
         sizes = np.arange(levels, last + 1)
         kl = _kl_quantized(magnitude, sizes, levels)
+        # the grid's step at threshold T: [0, T] in 2^bits - 1 steps, or [-T, T] when signed
+        step_per_threshold = (1.0 if positive_only else 2.0) / (2 ** bits - 1)
+        error = _clip_and_round_error(magnitude, sizes, stats.radius / half, step_per_threshold)
+        kl[error > ENTROPY_ERROR_BOUND * error[-1]] = np.inf  # sizes[-1] = last clips nothing
         best = float(np.min(kl))
         if not np.isfinite(best):
             threshold_bin = last
@@ -203,6 +225,23 @@ def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
             threshold_bin = int(sizes[np.argmax(kl <= best + 1e-12 + 1e-9 * best)])
     threshold = threshold_bin * stats.radius / half
     return (0.0 if positive_only else -threshold), threshold
+
+
+def _clip_and_round_error(magnitude: np.ndarray, sizes: np.ndarray, bin_width: float,
+                          step_per_threshold: float) -> np.ndarray:
+    """Expected squared error of each candidate threshold T = n * bin_width (n in `sizes`) over the
+    histogram of |x| (values at their bin centres x_j, exact zeros left out):
+        rounding: step^2 / 12 for every value inside [0, T] (Bennett 1948), step = T * step_per_threshold
+        clipping: sum over values beyond T of (x_j - T)^2, exactly,
+    from cumulative sums of the counts, of count * x and of count * x^2."""
+    centres = (np.arange(magnitude.size) + 0.5) * bin_width
+    def after(weights):  # sum over bins j >= n
+        return np.concatenate([np.cumsum(weights[::-1])[::-1], [0.0]])[sizes]
+    threshold = sizes * bin_width
+    inside = magnitude.sum() - after(magnitude)
+    clipped = after(magnitude * centres ** 2) - 2 * threshold * after(magnitude * centres) \
+        + threshold ** 2 * after(magnitude)
+    return inside * (threshold * step_per_threshold) ** 2 / 12 + clipped
 
 
 ENTROPY_BLOCK = 64  # candidate thresholds evaluated together (bounds the temporaries to 64 x levels)
