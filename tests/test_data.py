@@ -13,7 +13,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from PIL import Image
 
-from qfit import data as data_module
+from qfit.data import images as image_module
 from qfit.data import (Batch, DataFolder, Preprocess, load_preprocess, parse_labels_csv, read_labels_csv)
 from qfit.errors import QfitError
 
@@ -350,13 +350,13 @@ def test_batches_read_files_lazily(tmp_path, monkeypatch):
     image_folder(tmp_path, count=12)
     folder = DataFolder(str(tmp_path), RGB_INPUT)
     opened = []
-    real_open = data_module.Image.open
+    real_open = image_module.Image.open
 
     def counting_open(path, *args, **kwargs):
         opened.append(path)
         return real_open(path, *args, **kwargs)
 
-    monkeypatch.setattr(data_module.Image, "open", counting_open)
+    monkeypatch.setattr(image_module.Image, "open", counting_open)
     iterator = folder.batches(3)
     next(iterator)
     assert len(opened) == 3, "only the first batch's files are read before it is yielded"
