@@ -172,8 +172,9 @@ def _mse_range(stats: TensorStats, bits: int, symmetric: bool) -> tuple[float, f
 
 
 # The entropy threshold may cost at most this factor (3 dB) in expected squared error over the
-# unclipped range. Quantization noise of independent tensors adds up at the output to first order, so
-# tensors that each stay within 2x of min-max's noise keep the output within 3 dB of min-max's SQNR.
+# unclipped range. To first order the output error is a sum of each tensor's error through the layers
+# after it, and uncorrelated errors add in power, so tensors that each stay within 2x of min-max's
+# error keep the output within about 3 dB of min-max's SQNR (an estimate; the tests measure it).
 ENTROPY_ERROR_BOUND = 2.0
 
 
@@ -192,11 +193,13 @@ def _entropy_range(stats: TensorStats, bits: int) -> tuple[float, float]:
 
     The error bound, because P moves the clipped tail into its last bin whatever the distance, so KL
     does not see how far clipping moves values; it only sees the shape of the rest. Where that shape
-    is not a density at bin resolution, the search clips hard: a tensor of a few hundred values (a
-    squeeze-excitation gate, a model output: most bins empty, Q reproduces P at any threshold), or
-    point masses (a constant channel repeats one value at every position of every sample: Q spreads
-    it over its group at a cost that grows with the group width). On a dense histogram the KL
-    minimum lies within the bound and the search is Migacz's unchanged.
+    is not a smooth density at bin resolution, the search clipped hard (random-weight zoo models):
+    values away from 0 (a hard-sigmoid gate in [0.23, 0.76], a model output): below them P and Q are
+    both the tail piled into one bin, KL ~ 0, 99 % of the values clipped; point masses (a constant
+    channel repeats one value at every position of every sample: Q spreads it over its group at a
+    cost that grows with the group width, so narrow groups win); a few hundred values over 2048
+    bins, where counts are noise. On a dense histogram the KL minimum lies within the bound and the
+    search is Migacz's unchanged.
     """
     half = HIST_BINS // 2
     positive_only = stats.min >= 0
@@ -233,7 +236,8 @@ def _clip_and_round_error(magnitude: np.ndarray, sizes: np.ndarray, bin_width: f
     histogram of |x| (values at their bin centres x_j, exact zeros left out):
         rounding: step^2 / 12 for every value inside [0, T] (Bennett 1948), step = T * step_per_threshold
         clipping: sum over values beyond T of (x_j - T)^2, exactly,
-    from cumulative sums of the counts, of count * x and of count * x^2."""
+    from cumulative sums of the counts, of count * x and of count * x^2. Not _quant_error, which
+    rounds every bin exactly but costs bins x candidates; this runs for every candidate threshold."""
     centres = (np.arange(magnitude.size) + 0.5) * bin_width
     def after(weights):  # sum over bins j >= n
         return np.concatenate([np.cumsum(weights[::-1])[::-1], [0.0]])[sizes]
