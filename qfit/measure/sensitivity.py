@@ -58,13 +58,36 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     """
     qgraph = quantized.model.graph
     qindex = GraphIndex(qgraph)
-    producer = qindex.producer
     fresh = qindex.fresh_names()
-
     result = SwitchModel(model=onnx.ModelProto())
-    wheres_after: dict[str, onnx.NodeProto] = {}   # dequantized activation name -> Where emitted after its DQ
-    renamed_dq: dict[str, str] = {}
+    activation_switch, wheres_after = _activation_switches(result, plan, quantized, qindex.producer, fresh)
+    new_nodes, float_inits, weight_switch = _switched_nodes(result, reference, plan, qgraph, qindex.producer,
+                                                            fresh, wheres_after)
+    inputs = list(qgraph.input) + [helper.make_tensor_value_info(s, TensorProto.BOOL, []) for s in result.switches]
+    graph = helper.make_graph(new_nodes, qgraph.name, inputs, list(qgraph.output),
+                              list(qgraph.initializer) + float_inits)
+    result.model = helper.make_model(graph, opset_imports=list(quantized.model.opset_import),
+                                     ir_version=quantized.model.ir_version, producer_name="qfit")
+    result.layer_switches = _layer_switches(reference, plan, layers, weight_switch, activation_switch)
+    row_tensors = {row["tensor"] for row in layers}
+    result.value_of = {t: quantized.dequantized.get(t, t) for t in row_tensors | set(reference.output_names)}
+    return result
+
+
+def _add_switch(result: SwitchModel, fresh, what: str) -> str:
+    """A new switch input named in order (qfit_switch_0, _1, ...), described as `what`."""
+    switch = fresh(f"{SWITCH_PREFIX}{len(result.switches)}")
+    result.switches.append(switch)
+    result.described[switch] = what
+    return switch
+
+
+def _activation_switches(result: SwitchModel, plan: Plan, quantized: QuantizedModel, producer,
+                         fresh) -> tuple[dict[str, str], dict[str, onnx.NodeProto]]:
+    """(tensor -> its activation switch, dequantized name -> the Where to emit after its DQ). Each DQ
+    output is renamed (the Where's first data input) so that the Where takes over the old name."""
     activation_switch: dict[str, str] = {}
+    wheres_after: dict[str, onnx.NodeProto] = {}
     for tensor in plan.activations:
         deq = quantized.dequantized.get(tensor)
         dq = producer(deq)
@@ -73,15 +96,19 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
         q = producer(dq.input[0])
         if q is None or q.op_type != "QuantizeLinear":
             continue
-        switch = fresh(f"{SWITCH_PREFIX}{len(result.switches)}")
-        result.switches.append(switch)
-        result.described[switch] = f"activation quantizer of {tensor}"
+        switch = _add_switch(result, fresh, f"activation quantizer of {tensor}")
         activation_switch[tensor] = switch
         on_name = fresh(f"{deq}_switched")
-        renamed_dq[deq] = on_name
         wheres_after[deq] = helper.make_node("Where", [switch, on_name, q.input[0]], [deq],
                                              name=fresh(f"{deq}_switch_Where"))
+    return activation_switch, wheres_after
 
+
+def _switched_nodes(result: SwitchModel, reference: LoadedModel, plan: Plan, qgraph: onnx.GraphProto, producer,
+                    fresh, wheres_after: dict[str, onnx.NodeProto]
+                    ) -> tuple[list[onnx.NodeProto], list[onnx.TensorProto], dict[str, str]]:
+    """The int8 graph's nodes with a Where after each switched DQ and before each dequantized weight
+    or bias input -> (nodes, the float values' initializers, layer -> its weight switch)."""
     reference_nodes = {n.name: n for n in reference.graph.node}
     weight_switch: dict[str, str] = {}
     float_inits: list[onnx.TensorProto] = []
@@ -89,9 +116,10 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
     for node in qgraph.node:
         copy = onnx.NodeProto()
         copy.CopyFrom(node)
-        if node.op_type == "DequantizeLinear" and node.output[0] in renamed_dq:
-            copy.output[0] = renamed_dq[node.output[0]]
-            new_nodes += [copy, wheres_after[node.output[0]]]
+        if node.op_type == "DequantizeLinear" and node.output[0] in wheres_after:
+            where = wheres_after[node.output[0]]
+            copy.output[0] = where.input[1]
+            new_nodes += [copy, where]
             continue
         ref = reference_nodes.get(node.name)
         if ref is not None and node.op_type not in QDQ_OPS and node.op_type == ref.op_type:
@@ -103,37 +131,40 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
                 if made is None or made.op_type != "DequantizeLinear":
                     continue
                 if node.name not in weight_switch:
-                    switch = fresh(f"{SWITCH_PREFIX}{len(result.switches)}")
-                    result.switches.append(switch)
-                    result.described[switch] = f"weights of {node.name}"
-                    weight_switch[node.name] = switch
-                if i < len(ref.input) and ref.input[i] in reference.constants:
-                    float_value = reference.constants[ref.input[i]].astype(np.float32)
-                else:  # a bias that only the int8 model has (added by bias correction): float has none
-                    shape = [d.dim_value for d in next(
-                        init for init in qgraph.initializer if init.name == made.input[0]).dims]
-                    float_value = np.zeros(shape, np.float32)
+                    weight_switch[node.name] = _add_switch(result, fresh, f"weights of {node.name}")
                 float_name = fresh(f"{name}_float")
-                float_inits.append(numpy_helper.from_array(float_value, float_name))
+                float_inits.append(numpy_helper.from_array(
+                    _float_value(reference, ref, i, qgraph, made), float_name))
                 chosen = fresh(f"{name}_switched")
                 new_nodes.append(helper.make_node("Where", [weight_switch[node.name], name, float_name], [chosen],
                                                   name=fresh(f"{chosen}_Where")))
                 copy.input[i] = chosen
         new_nodes.append(copy)
+    return new_nodes, float_inits, weight_switch
 
-    inputs = list(qgraph.input) + [helper.make_tensor_value_info(s, TensorProto.BOOL, []) for s in result.switches]
-    graph = helper.make_graph(new_nodes, qgraph.name, inputs, list(qgraph.output),
-                              list(qgraph.initializer) + float_inits)
-    result.model = helper.make_model(graph, opset_imports=list(quantized.model.opset_import),
-                                     ir_version=quantized.model.ir_version, producer_name="qfit")
 
+def _float_value(reference: LoadedModel, ref: onnx.NodeProto, i: int, qgraph: onnx.GraphProto,
+                 made: onnx.NodeProto) -> np.ndarray:
+    """The float model's value of input `i` of `ref`, for the float branch of its switch."""
+    if i < len(ref.input) and ref.input[i] in reference.constants:
+        return reference.constants[ref.input[i]].astype(np.float32)
+    # a bias that only the int8 model has (added by bias correction): float has none
+    shape = [d.dim_value for d in next(init for init in qgraph.initializer if init.name == made.input[0]).dims]
+    return np.zeros(shape, np.float32)
+
+
+def _layer_switches(reference: LoadedModel, plan: Plan, layers: list[dict], weight_switch: dict[str, str],
+                    activation_switch: dict[str, str]) -> dict[str, list[str]]:
+    """Layer row name -> the switches of its quantizers (none for a layer kept float)."""
+    reference_nodes = {n.name: n for n in reference.graph.node}
     row_tensors = {row["tensor"] for row in layers}
     # A quantizer that no row owns (a graph input, or the output of a float layer read by an int8
     # one) belongs to every row that reads it.
     orphans = {t for t in activation_switch if t not in row_tensors}
+    layer_switches: dict[str, list[str]] = {}
     for row in layers:
         if row["name"] in plan.float_nodes:
-            result.layer_switches[row["name"]] = []
+            layer_switches[row["name"]] = []
             continue
         switches = []
         if row["name"] in weight_switch:
@@ -144,9 +175,8 @@ def build_switch_model(reference: LoadedModel, plan: Plan, quantized: QuantizedM
         for name in (node.input if node is not None else []):
             if name in orphans and activation_switch[name] not in switches:
                 switches.append(activation_switch[name])
-        result.layer_switches[row["name"]] = switches
-    result.value_of = {t: quantized.dequantized.get(t, t) for t in row_tensors | set(reference.output_names)}
-    return result
+        layer_switches[row["name"]] = switches
+    return layer_switches
 
 
 # ---- configurations as plain models, cut where a layer's quantizers begin --------------------------
@@ -503,26 +533,43 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
         labels = None if labels is None or batch.labels is None else labels + list(batch.labels[:keep])
         samples += keep
         float_outs.append(float_runner(inputs)[output])
-        state = {f"{tag}@{name}": value for name, value in inputs.items() for tag in ("float", "int8")}
-        for group, runner in zip(groups, runners):
-            got = {**state, **runner(state)}
-            for k in group.rows:
-                own = switch.value_of.get(active[k]["tensor"], active[k]["tensor"])
-                outs[k][0].append(got[group.names[(f"alone{k}", out_name)]])
-                outs[k][1].append(got[group.names[(f"kept{k}", out_name)]])
-                tensor_error[active[k]["name"]].update(got[group.names[("float", own)]],
-                                                       got[group.names[(f"alone{k}", own)]])
-            state = {f"{tag}@{name}": got[group.names[(tag, name)]] for name in group.state_out
-                     for tag in ("float", "int8")}
-            if not group.state_out:
-                int8_outs.append(got[group.names[("int8", out_name)]])
+        int8_outs += _run_groups(inputs, groups, runners, switch, active, out_name, outs, tensor_error)
         if progress is not None:
             progress.update(keep)
     isolated = {row["name"]: np.concatenate(outs[k][0]) for k, row in enumerate(active)}
     kept_float = {row["name"]: np.concatenate(outs[k][1]) for k, row in enumerate(active)}
     rows, summary = figures_of(layers, np.concatenate(float_outs), np.concatenate(int8_outs), isolated, kept_float,
                                tensor_error, None if labels is None else np.asarray(labels), kind)
-    summary.update({
+    summary.update(_sweep_notes(samples, samples_available, sample_cap, len(active), len(groups)))
+    return {"rows": rows, **summary}
+
+
+def _run_groups(inputs: dict[str, np.ndarray], groups: list, runners: list[SweepSession], switch: SwitchModel,
+                active: list[dict], out_name: str, outs: dict, tensor_error: dict) -> list[np.ndarray]:
+    """One batch through the sweep models in turn, each handing the float and int8 tensors crossing
+    into the next group on; appends each configuration's output to `outs` and its own tensor's error
+    to `tensor_error`. Returns the int8 model's output (in a list: only the group that ends the model has it)."""
+    state = {f"{tag}@{name}": value for name, value in inputs.items() for tag in ("float", "int8")}
+    int8_outs = []
+    for group, runner in zip(groups, runners):
+        got = {**state, **runner(state)}
+        for k in group.rows:
+            own = switch.value_of.get(active[k]["tensor"], active[k]["tensor"])
+            outs[k][0].append(got[group.names[(f"alone{k}", out_name)]])
+            outs[k][1].append(got[group.names[(f"kept{k}", out_name)]])
+            tensor_error[active[k]["name"]].update(got[group.names[("float", own)]],
+                                                   got[group.names[(f"alone{k}", own)]])
+        state = {f"{tag}@{name}": got[group.names[(tag, name)]] for name in group.state_out
+                 for tag in ("float", "int8")}
+        if not group.state_out:
+            int8_outs.append(got[group.names[("int8", out_name)]])
+    return int8_outs
+
+
+def _sweep_notes(samples: int, samples_available: int | None, sample_cap: int | None, layers_swept: int,
+                 sweep_models: int) -> dict:
+    """The summary keys that say what the sweep ran on and how."""
+    return {
         "samples_used": samples,
         "samples_available": samples_available if samples_available is not None else samples,
         "sample_cap": sample_cap,
@@ -530,20 +577,18 @@ def sweep(reference: LoadedModel, plan: Plan, quantized: QuantizedModel, layers:
                          f"disjoint halves of the demo's evaluation folder agrees (Spearman rank correlation >= 0.9)"
                          if sample_cap == DEFAULT_SAMPLE_CAP else f"cap set to {sample_cap} samples "
                          f"(default {DEFAULT_SAMPLE_CAP}, chosen for a ranking that agrees between halves of the data)"),
-        "layers_swept": len(active),
-        "runs_per_sample": 1 + 2 * len(active),
-        "sweep_models": len(groups),
+        "layers_swept": layers_swept,
+        "runs_per_sample": 1 + 2 * layers_swept,
+        "sweep_models": sweep_models,
         "design": "each configuration a plain model with its switches fixed, run only from the first node its "
                   "layer's quantizers touch, reading the float or int8 model's tensors there; configurations "
                   "of neighbouring layers share one onnxruntime session",
-    })
-    return {"rows": rows, **summary}
+    }
 
 
 def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, isolated: dict, kept_float: dict,
                tensor_error: dict, labels: np.ndarray | None, kind: str) -> tuple[dict, dict]:
-    """The rows (ROW_KEYS) and the section's summary from the outputs of each configuration.
-    (~70 lines: one figure after another, each a line or two.)"""
+    """The rows (ROW_KEYS) and the section's summary from the outputs of each configuration."""
     classification = kind == "classification"
     labelled = classification and labels is not None
     samples = len(float_out)
@@ -563,25 +608,13 @@ def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, 
             continue
         alone = output_figures(float_out, isolated[name], classification)
         kept = output_figures(float_out, kept_float[name], classification)
-        mean, se = mean_and_se(alone.sqnr_db)
-        entry["isolated_output_sample_sqnr_db"], entry["isolated_output_sample_sqnr_se_db"] = round_db(mean), _r(se)
-        entry["isolated_output_sqnr_db"] = round_db(sqnr_from_sums(signal, float(alone.noise.sum())))
-        # per sample: how many dB keeping this layer float gains over the all-int8 output
-        mean, se = mean_and_se(kept.sqnr_db - int8.sqnr_db)
-        entry["float_recovery_db"], entry["float_recovery_se_db"] = round_db(mean), _r(se)
-        entry["output_sqnr_if_float_db"] = round_db(sqnr_from_sums(signal, float(kept.noise.sum())))
-        entry["sqnr_isolated_db"] = round_db(tensor_error[name].sqnr_db())
-        entry["cosine_isolated"] = round(tensor_error[name].cosine(), 6)
+        _sqnr_figures(entry, alone, kept, int8, signal, tensor_error[name])
         if not classification:
             continue
         mean, se = mean_and_se(1000.0 * alone.kl_nats)
         entry["isolated_output_kl_mnats"], entry["isolated_output_kl_se_mnats"] = round(mean, 4), _r(se, 4)
-        float_right, alone_right = float_predicted == truth, alone.predicted == truth
-        int8_right, kept_right = int8.predicted == truth, kept.predicted == truth
-        worse, better = int(np.sum(float_right & ~alone_right)), int(np.sum(~float_right & alone_right))
-        points["isolated"][name] = (100.0 * (worse - better) / samples, flips_resolved(worse, better))
-        saved, lost = int(np.sum(~int8_right & kept_right)), int(np.sum(int8_right & ~kept_right))
-        points["float"][name] = (100.0 * (saved - lost) / samples, flips_resolved(saved, lost))
+        points["isolated"][name], points["float"][name] = _flip_points(alone, kept, int8, float_predicted, truth,
+                                                                      samples)
     shown = {view: any(resolved for _, resolved in points[view].values()) for view in points}
     for view, key in (("isolated", isolated_key), ("float", float_key)):
         if classification and shown[view]:
@@ -610,6 +643,30 @@ def figures_of(layers: list[dict], float_out: np.ndarray, int8_out: np.ndarray, 
         "row_keys": list(rows[ranking[0]]) if ranking else [],   # the keys this sweep put on each layer row
     }
     return rows, summary
+
+
+def _sqnr_figures(entry: dict, alone, kept, int8, signal: float, own_error: ErrorSums) -> None:
+    """A layer's SQNR figures: only it int8 (at the output and on its own tensor), only it float."""
+    mean, se = mean_and_se(alone.sqnr_db)
+    entry["isolated_output_sample_sqnr_db"], entry["isolated_output_sample_sqnr_se_db"] = round_db(mean), _r(se)
+    entry["isolated_output_sqnr_db"] = round_db(sqnr_from_sums(signal, float(alone.noise.sum())))
+    # per sample: how many dB keeping this layer float gains over the all-int8 output
+    mean, se = mean_and_se(kept.sqnr_db - int8.sqnr_db)
+    entry["float_recovery_db"], entry["float_recovery_se_db"] = round_db(mean), _r(se)
+    entry["output_sqnr_if_float_db"] = round_db(sqnr_from_sums(signal, float(kept.noise.sum())))
+    entry["sqnr_isolated_db"] = round_db(own_error.sqnr_db())
+    entry["cosine_isolated"] = round(own_error.cosine(), 6)
+
+
+def _flip_points(alone, kept, int8, float_predicted: np.ndarray, truth: np.ndarray,
+                 samples: int) -> tuple[tuple, tuple]:
+    """(only it int8, only it float): each (top-1 points lost, whether the flips are beyond chance)."""
+    float_right, alone_right = float_predicted == truth, alone.predicted == truth
+    int8_right, kept_right = int8.predicted == truth, kept.predicted == truth
+    worse, better = int(np.sum(float_right & ~alone_right)), int(np.sum(~float_right & alone_right))
+    saved, lost = int(np.sum(~int8_right & kept_right)), int(np.sum(int8_right & ~kept_right))
+    return ((100.0 * (worse - better) / samples, flips_resolved(worse, better)),
+            (100.0 * (saved - lost) / samples, flips_resolved(saved, lost)))
 
 
 def _r(value: float | None, digits: int = 2) -> float | None:
