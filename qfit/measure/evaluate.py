@@ -92,17 +92,19 @@ def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict],
     input_name = loaded.input_names[0]
     reconstruction = loaded.shapes.get(output) == loaded.shapes.get(input_name)
 
-    def absorb(batch, reference: dict, got: dict) -> None:
-        preview.update(batch.inputs, got[int8_output])   # on the worker: beside the next batch's passes
+    def absorb(batch, reference: dict, got) -> None:
+        # `got` may hold the integer path's int8 tensors, dequantized on each read: each is read once
+        int8_out = got[int8_output]
+        preview.update(batch.inputs, int8_out)   # on the worker: beside the next batch's passes
         for t, q in zip(tensors, int8_names):
-            sums[t].update(reference[t], got[q])
+            sums[t].update(reference[t], int8_out if q == int8_output else got[q])
         score_inputs = None
         if reconstruction and threshold is not None:
             x = batch.inputs[input_name]
             n = x.shape[0]
             score_inputs = (((reference[output] - x) ** 2).reshape(n, -1).mean(1),
-                            ((got[int8_output] - x) ** 2).reshape(n, -1).mean(1))
-        metrics.update(reference[output], got[int8_output], batch.labels, score_inputs)
+                            ((int8_out - x) ** 2).reshape(n, -1).mean(1))
+        metrics.update(reference[output], int8_out, batch.labels, score_inputs)
 
     # As in qfit.quant.observe: one worker sums batch k while onnxruntime runs batch k+1; batches are
     # absorbed in order, one at a time, so the sums are those of a plain loop.

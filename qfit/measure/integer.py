@@ -18,6 +18,7 @@ acc * M0 * 2^(shift - 31), half away from zero.
 """
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -178,6 +179,7 @@ class IntegerProgram:
             if value is not None:
                 inits[node.output[0]] = value
         self._read_types_and_shapes(model)
+        self._release_plans: dict[tuple[str, ...], list[list[str]]] = {}
         self.quantizers: dict[str, Grid] = {}       # Q output -> grid
         self.dequantized: dict[str, str] = {}       # activation DQ output -> Q output
         integer_constants = self._read_quantizers(graph, inits)   # DQ of a constant -> integers and grid
@@ -321,9 +323,38 @@ class IntegerProgram:
         env[name] = _dequantize(env[q], self.quantizers[q])
         return env[name]
 
-    def run(self, feeds: dict[str, np.ndarray], wanted: list[str]) -> dict[str, np.ndarray]:
+    def _source(self, name: str) -> str | None:
+        """The integer tensor (a Q output) whose dequantized values `name` is, if any."""
+        return self.dequantized.get(name) or self.pre_quantizer.get(name)
+
+    def _releases(self, wanted: tuple[str, ...]) -> list[list[str]]:
+        """Per step, the tensors no later step reads (liveness from the steps' reads): dropped right
+        after it, so a batch holds only the tensors still to be read, not the whole graph's."""
+        keep = set(wanted) | {self._source(name) for name in wanted}
+        last_step: dict[str, int] = {}
+        for index, step in enumerate(self.steps):
+            for name in step.reads:
+                if name is not None:
+                    last_step[name] = index
+                    if step.kind != "integer" and self._source(name):   # read through self.value
+                        last_step[self._source(name)] = index
+            for name in step.writes:
+                last_step.setdefault(name, index)   # written, never read: dropped at once
+        releases: list[list[str]] = [[] for _ in self.steps]
+        for name, index in last_step.items():
+            if name not in keep:
+                releases[index].append(name)
+        return releases
+
+    def run(self, feeds: dict[str, np.ndarray], wanted: list[str]) -> "StoredTensors":
+        """The tensors `wanted` for `feeds`; an integer tensor's float view is returned as its integers
+        and grid, dequantized when read (a quarter of the bytes of float32 while it waits)."""
+        wanted = tuple(wanted)
+        releases = self._release_plans.get(wanted)
+        if releases is None:
+            releases = self._release_plans[wanted] = self._releases(wanted)
         env = dict(feeds)
-        for step in self.steps:
+        for step, released in zip(self.steps, releases):
             if step.kind == "integer":
                 outs = step.prepared.run([env[r] if r is not None else None for r in step.reads])
                 env.update(zip(step.writes, outs))
@@ -332,7 +363,40 @@ class IntegerProgram:
             else:
                 outs = step.run_float([self.value(env, r) for r in step.reads])
                 env.update(zip(step.writes, outs))
-        return {name: self.value(env, name) for name in wanted}
+            for name in released:
+                env.pop(name, None)
+        stored = {}
+        for name in wanted:
+            source = self._source(name)
+            if source in env:
+                stored[name] = (env[source], self.quantizers[source])
+            else:
+                stored[name] = (self.value(env, name), None)
+        return StoredTensors(stored)
+
+
+class StoredTensors(Mapping):
+    """One run's tensors by name as the integer path stores them: (integers, grid) for an integer
+    tensor, dequantized to float32 on each read (the same values as DequantizeLinear), or (floats, None)."""
+
+    def __init__(self, stored: dict[str, tuple[np.ndarray, Grid | None]]):
+        self.stored = stored
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        values, grid = self.stored[name]
+        return values if grid is None else _dequantize(values, grid)
+
+    def __iter__(self):
+        return iter(self.stored)
+
+    def __len__(self) -> int:
+        return len(self.stored)
+
+    @staticmethod
+    def concatenate(parts: list["StoredTensors"]) -> "StoredTensors":
+        """The runs of consecutive samples as one batch (the grids are the program's, the same in each)."""
+        return StoredTensors({name: (np.concatenate([p.stored[name][0] for p in parts], axis=0), grid)
+                              for name, (_, grid) in parts[0].stored.items()})
 
 
 def _broadcast(grid: Grid, ndim: int) -> tuple[np.ndarray, np.ndarray]:
@@ -370,18 +434,18 @@ class IntegerRunner:
         self.outputs = list(outputs)
         self.batched = batch_size > 1
 
-    def __call__(self, inputs: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    def __call__(self, inputs: dict[str, np.ndarray]) -> StoredTensors:
         n = next(iter(inputs.values())).shape[0]
         if n > 1 and self.batched:
             try:
                 got = self.program.run(inputs, self.outputs)
-                if all(v.ndim and v.shape[0] == n for v in got.values()):
+                if all(v.ndim and v.shape[0] == n for v, _ in got.stored.values()):
                     return got
             except Exception:  # onnxruntime refuses a batch the graph hard-codes: fall back below
                 pass
             self.batched = False
-        parts = [self.program.run({k: v[i:i + 1] for k, v in inputs.items()}, self.outputs) for i in range(n)]
-        return {name: np.concatenate([p[name] for p in parts], axis=0) for name in self.outputs}
+        return StoredTensors.concatenate([self.program.run({k: v[i:i + 1] for k, v in inputs.items()}, self.outputs)
+                                          for i in range(n)])
 
     @property
     def overflows(self) -> dict[str, int]:

@@ -28,10 +28,15 @@ FAITHFUL_PATH = ("onnxruntime CPU with QDQ fusion disabled (session.disable_quan
 MAX_THREADS = 256  # per session; thousands made onnxruntime deadlock or abort (the CLI refuses more)
 
 
-def session_options(faithful: bool, threads: int = 0) -> ort.SessionOptions:
+def session_options(faithful: bool, threads: int = 0, memory_arena: bool = False) -> ort.SessionOptions:
     """onnxruntime options for one session; `threads` = intra-op threads (0 = onnxruntime's default)."""
     so = ort.SessionOptions()
     so.log_severity_level = 4  # the batch probe fails by design on fixed-batch graphs: keep it quiet
+    # Without the memory arena a run's buffers go back when their arrays are dropped. An arena keeps its
+    # session's largest working set for the session's life, grown in powers of two: a pass exposing
+    # every tensor held about twice a batch's tensors, and the integer path's one session per node
+    # held the whole model's activations once more (demo check: peak RSS 830 MiB with arenas).
+    so.enable_cpu_mem_arena = memory_arena
     # Workers that busy-wait between operators take the cores from the numpy thread that bins or
     # sums the previous batch meanwhile (qfit.quant.observe, qfit.measure.evaluate), and from anything
     # else running on a laptop; they sleep instead.
