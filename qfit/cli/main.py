@@ -83,12 +83,14 @@ def _on_signal(signum, frame):
 
 
 def main(argv: list[str] | None = None) -> int:
-    # A shell starting qfit as a background job (as CI does) ignores SIGINT for it; install the
-    # handler explicitly so an interrupt always ends the run cleanly.
-    signal.signal(signal.SIGTERM, _on_signal)
-    signal.signal(signal.SIGINT, _on_signal)
-    boundary.guard_stdout()
     try:
+        # A shell starting qfit as a background job (as CI does) ignores SIGINT for it; install the
+        # handlers explicitly so an interrupt always ends the run cleanly. Inside the `try`, so a
+        # signal that lands right after its handler is installed is still handled here; SIGINT
+        # first, so a process that shows its SIGTERM handler has both.
+        signal.signal(signal.SIGINT, _on_signal)
+        signal.signal(signal.SIGTERM, _on_signal)
+        boundary.guard_stdout()
         parser = build_parser()
         args = parser.parse_args(argv)
         boundary.check_options(args)
