@@ -71,17 +71,34 @@ def compared_layers(loaded: LoadedModel, plan: Plan) -> list[dict]:
     return rows
 
 
+# Bytes of the float32 tensors one evaluation batch exposes (every compared layer's). Two batches are
+# alive at once (one summed while the next runs) with their int8 twins and temporaries, so the
+# evaluation's memory is a few times this, whatever the model's size and the number of samples.
+EVALUATION_BATCH_BYTES = 16 << 20
+
+
+def evaluation_batch(loaded: LoadedModel, tensors: list[str], batch_size: int,
+                     batch_bytes: int = EVALUATION_BATCH_BYTES) -> int:
+    """`batch_size`, or fewer samples where the batch's float32 `tensors` would exceed `batch_bytes`."""
+    sample_bytes = sum(int(np.prod(loaded.shapes[t][1:], dtype=np.int64)) * 4
+                       for t in tensors if len(loaded.shapes.get(t, ())) > 1)
+    return max(1, min(batch_size, batch_bytes // sample_bytes)) if sample_bytes else batch_size
+
+
 def evaluate(loaded: LoadedModel, quantized: QuantizedModel, layers: list[dict], data: DataFolder,
              batch_size: int, threshold: float | None = None, progress: bool = True,
              threads: int = 0, arithmetic: str = "integer", rounding: str = "double",
-             compare_preview: bool = True) -> tuple[dict, dict[str, ErrorSums]]:
+             compare_preview: bool = True, batch_bytes: int = EVALUATION_BATCH_BYTES
+             ) -> tuple[dict, dict[str, ErrorSums]]:
     """Float and int8 passes over `data`: end metrics and accumulated per-layer errors. The int8 pass
     runs in the selected arithmetic (qfit.measure.integer: the integer path, or the float preview);
     the end metrics carry the report's "arithmetic" section under the key "arithmetic" (with the
-    integer path, `compare_preview` also runs the float preview to count changed predictions)."""
+    integer path, `compare_preview` also runs the float preview to count changed predictions).
+    Batches hold `batch_size` samples, fewer where their compared tensors exceed `batch_bytes`."""
     output = loaded.output_names[0]
     tensors = list(dict.fromkeys([row["tensor"] for row in layers] + [output]))
     int8_names = [quantized.dequantized.get(t, t) for t in tensors]
+    batch_size = evaluation_batch(loaded, tensors, batch_size, batch_bytes)
     int8_output = quantized.dequantized.get(output, output)
     float_runner = Runner(loaded.model, tensors, batch_size=batch_size, threads=threads)
     int8_runner = integer.quantized_runner(quantized.model, int8_names, arithmetic, rounding, batch_size, threads)
