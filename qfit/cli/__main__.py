@@ -1,5 +1,3 @@
-import sys
+from qfit.cli.main import run_as_program
 
-from qfit.cli.main import main
-
-sys.exit(main())
+run_as_program()

@@ -8,6 +8,7 @@ and the signal handlers; qfit.cli.arguments the arguments they share.
 from __future__ import annotations
 
 import argparse
+import os
 import signal
 import sys
 
@@ -106,5 +107,24 @@ def main(argv: list[str] | None = None) -> int:
         return EXIT_INTERRUPTED
 
 
+def run_as_program() -> None:
+    """The `qfit` program (console script and `python -m qfit.cli`): main(), then exit with its code.
+
+    After an interrupt the process ends with os._exit once the streams are flushed. Some CPython
+    releases (seen with Debian's 3.11.2, not with 3.11.7) remember a KeyboardInterrupt raised inside
+    a nested evaluation, such as an extension module's initialisation during an import, even when
+    it was caught, and then end the process by SIGINT (status -2) instead of the 130 main returned.
+    Everything qfit writes is complete or absent by then, so no exit handler is needed."""
+    code = main()
+    if code == EXIT_INTERRUPTED:
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except (OSError, ValueError):
+                pass
+        os._exit(code)
+    sys.exit(code)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    run_as_program()
