@@ -6,6 +6,7 @@ to send it is read from /proc (the handler qfit installs) and from a gate held a
 """
 from __future__ import annotations
 
+import gc
 import io
 import json
 import os
@@ -272,6 +273,7 @@ def test_model_with_external_data_loads_and_gives_the_same_int8_model(tmp_path):
 def _iteration_peak_bytes(folder) -> int:
     """Peak memory allocated while every batch of `folder` streams, above what the DataFolder holds."""
     data = DataFolder(folder, {"x": (1, 4)})
+    gc.collect()
     tracemalloc.start()
     try:
         baseline = tracemalloc.get_traced_memory()[0]
@@ -293,7 +295,9 @@ def test_ten_thousand_file_folder_streams_in_constant_memory(tmp_path):
         for i in range(count):
             (folder / f"s_{i:05d}.npy").write_bytes(encoded.getvalue())
     _iteration_peak_bytes(str(tmp_path / "files_1000"))  # warm-up: first-use caches are not per file
-    small = _iteration_peak_bytes(str(tmp_path / "files_1000"))
-    large = _iteration_peak_bytes(str(tmp_path / "files_10000"))
+    # tracemalloc sees every thread's allocations, and a thread left by an earlier test can allocate
+    # during a measurement: noise only adds, so the smallest of three runs is the folder's own peak.
+    small = min(_iteration_peak_bytes(str(tmp_path / "files_1000")) for _ in range(3))
+    large = min(_iteration_peak_bytes(str(tmp_path / "files_10000")) for _ in range(3))
     # Ten times the files, the same batches: anything kept per file would show as a ratio near 10.
     assert large / small < 1.5, (small, large)
