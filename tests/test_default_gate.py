@@ -130,3 +130,17 @@ def test_expect_float_without_labels_exits_2_before_any_pass(tmp_path, digits, c
     err = capfd.readouterr().err
     assert code == 2 and report is None and not (tmp_path / "out").exists()
     assert "--expect-float: needs labelled evaluation data" in err and len(err.strip().splitlines()) == 1
+
+
+def test_labels_in_the_wrong_class_order_fail_the_run_by_default(tmp_path, digits):
+    # The digits CNN scores 533 / 540 on its held-out split (tests/digits_folders.py). With the class
+    # order rotated by one, every label names the wrong output: the float model falls to chance, and no
+    # drop measured against such labels may pass (exact binomial test against the majority class).
+    rotated = ",".join(str((k + 1) % 10) for k in range(10))
+    code, report = _digits(tmp_path / "rotated", digits, "--class-order", rotated)
+    assert report["accuracy"]["float"] < 20.0
+    assert code == 1 and "float_at_chance" in report["verdict"]["failed"]
+    assert "majority-class rate" in report["verdict"]["warnings"][0]
+    # the explicit off switch relaxes it; the warning stays
+    code, report = _digits(tmp_path / "rotated_off", digits, "--class-order", rotated, "--no-accuracy-gate")
+    assert code == 0 and report["verdict"]["warnings"]

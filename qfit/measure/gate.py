@@ -129,7 +129,7 @@ CLIPPING_METHODS = ("percentile", "mse", "entropy")  # calibration methods that 
 
 def judge(accuracy: dict, gate: GateOptions, method: str | None = None) -> dict:
     """The accuracy part of the verdict: {"accuracy_ok", "failed", "accuracy_gate", "float_check",
-    "warnings"}; "failed" lists "accuracy" and/or "float_accuracy". `method`: the calibration method,
+    "warnings"}; "failed" lists "accuracy", "float_accuracy" and/or "float_at_chance". `method`: the calibration method,
     named in the reason when the gate fails and the method clips ranges."""
     section = accuracy_gate(accuracy, gate)
     if section["passed"] is False and method in CLIPPING_METHODS:
@@ -141,5 +141,10 @@ def judge(accuracy: dict, gate: GateOptions, method: str | None = None) -> dict:
         failed.append("accuracy")
     if expected is not None and not expected["passed"]:
         failed.append("float_accuracy")
+    warnings = accuracy_warnings(accuracy)
+    if warnings and gate.enabled:
+        # a float model at chance on these labels means the measurement itself is broken (labels, their
+        # order or the preprocessing): no drop measured on it can pass; --no-accuracy-gate relaxes it
+        failed.append("float_at_chance")
     return {"accuracy_ok": section["passed"] is not False, "failed": failed, "accuracy_gate": section,
-            "float_check": expected, "warnings": accuracy_warnings(accuracy)}
+            "float_check": expected, "warnings": warnings}
