@@ -2,6 +2,7 @@
 streamed from them (images through images.py, arrays through arrays.py)."""
 from __future__ import annotations
 
+import copy
 import os
 import posixpath
 from dataclasses import dataclass
@@ -16,6 +17,11 @@ from qfit.data.samples import (ARRAY_EXTENSIONS, IMAGE_EXTENSIONS, SkippableErro
                                is_data_file, shape_text)
 from qfit.errors import QfitError
 from qfit.files import NOT_REGULAR_REASON, split_regular
+
+
+def seeded_choice(count: int, limit: int, seed: int) -> np.ndarray:
+    """`limit` of `count` indices, drawn with `seed` and sorted (the files keep their order)."""
+    return np.sort(np.random.default_rng(seed).choice(count, size=limit, replace=False))
 
 
 @dataclass
@@ -124,6 +130,18 @@ class DataFolder:
         if pending:
             yield self._stack(pending, pending_files, pending_labels)
 
+    def sample(self, limit: int | None, seed: int) -> "DataFolder":
+        """At most `limit` of this folder's samples, chosen as `limit` chooses them when a folder is
+        opened (seeded, kept in order), without listing and checking the folder again."""
+        if limit is None or limit >= len(self.files):
+            return self
+        chosen = seeded_choice(len(self.files), limit, seed)
+        subset = copy.copy(self)
+        subset.files = [self.files[i] for i in chosen]
+        subset.labels = None if self.labels is None else self.labels[chosen]
+        subset.skipped = []   # a file the subset skips late is also skipped (and counted) by the whole folder
+        return subset
+
     def describe(self) -> dict:
         return {
             "folder": self.folder,
@@ -189,7 +207,7 @@ class DataFolder:
         if not isinstance(limit, (int, np.integer)) or isinstance(limit, bool) or limit <= 0:
             raise QfitError(f"{self.role} data: limit must be a positive number of samples, got {limit}")
         if limit < len(files):
-            chosen = np.sort(np.random.default_rng(seed).choice(len(files), size=limit, replace=False))
+            chosen = seeded_choice(len(files), limit, seed)
             files = [files[i] for i in chosen]
             labels = None if labels is None else [labels[i] for i in chosen]
         return files, labels

@@ -8,7 +8,6 @@ or the float preview (the faithful onnxruntime path, qfit.runtime.sessions.FAITH
 """
 from __future__ import annotations
 
-import copy
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -37,16 +36,8 @@ def output_kind(loaded: LoadedModel) -> str:
 
 
 def sample_of(data: DataFolder, limit: int | None, seed: int) -> DataFolder:
-    """At most `limit` samples of an opened folder, chosen as DataFolder chooses them for `limit`
-    (seeded, sorted), without listing and checking the folder again."""
-    if limit is None or limit >= len(data):
-        return data
-    chosen = np.sort(np.random.default_rng(seed).choice(len(data), size=limit, replace=False))
-    subset = copy.copy(data)
-    subset.files = [data.files[i] for i in chosen]
-    subset.labels = None if data.labels is None else data.labels[chosen]
-    subset.skipped = []   # a file this subset skips late is also skipped (and counted) by the whole folder
-    return subset
+    """At most `limit` samples of an opened folder (DataFolder.sample)."""
+    return data.sample(limit, seed)
 
 
 def compared_layers(loaded: LoadedModel, plan: Plan) -> list[dict]:
