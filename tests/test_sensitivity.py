@@ -199,6 +199,13 @@ def test_sweep_models_compute_each_configuration_as_the_switch_model_defines_it(
     rows = [r for r in layers if switch.layer_switches.get(r["name"])]
     groups = sensitivity.sweep_groups(switch, rows, "y", sensitivity._tensor_types(switch.model))
     assert len(groups) == (2 if group_nodes == 1 else 1)
+    for group in groups:
+        # a weight's DequantizeLinear is computed once and read by every configuration (emitted per
+        # configuration, each held its own float copy of the weights after its start)
+        initializers = {t.name for t in group.model.graph.initializer}
+        weight_dq = [n.input[0] for n in group.model.graph.node
+                     if n.op_type == "DequantizeLinear" and n.input[0] in initializers]
+        assert weight_dq and len(weight_dq) == len(set(weight_dq))
     cuts = sensitivity.find_cuts(switch, [r["name"] for r in rows])
     assert cuts.start_of["conv1"] == 0 < cuts.start_of["conv2"]   # conv2 runs from its own quantizers on
     everything = set(switch.switches)

@@ -15,6 +15,7 @@ import sys
 from qfit import __version__
 from qfit.cli import boundary
 from qfit.errors import QfitError
+from qfit.runtime import heap
 
 EXIT_OK, EXIT_FAIL, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
@@ -114,7 +115,11 @@ def run_as_program() -> None:
     releases (seen with Debian's 3.11.2, not with 3.11.7) remember a KeyboardInterrupt raised inside
     a nested evaluation, such as an extension module's initialisation during an import, even when
     it was caught, and then end the process by SIGINT (status -2) instead of the 130 main returned.
-    Everything qfit writes is complete or absent by then, so no exit handler is needed."""
+    Everything qfit writes is complete or absent by then, so no exit handler is needed.
+
+    The program owns its process, so it tunes the C heap for batch after batch of large buffers
+    (qfit.runtime.heap); the library leaves a caller's process as it is."""
+    heap.keep_freed_buffers()
     code = main()
     if code == EXIT_INTERRUPTED:
         for stream in (sys.stdout, sys.stderr):

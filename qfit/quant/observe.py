@@ -294,15 +294,17 @@ def observe(model_runner, batches, tensors: list[str], progress=None,
             histograms: bool = True) -> dict[str, TensorStats]:
     """Run `model_runner(batch_inputs) -> dict name -> array` over `batches`, collecting stats.
 
-    `model_runner` must return every name in `tensors`. `batches` yields qfit.data.Batch-like
+    `model_runner` must return every name in `tensors`, in a new dict per call (observe empties it). `batches` yields qfit.data.Batch-like
     objects with `.inputs`. Memory: one TensorStats per tensor, independent of the sample count.
     `histograms=False` keeps min/max only (the min-max method needs nothing else; it is faster).
     """
     stats = {name: TensorStats(name, histogram=histograms) for name in tensors}
 
     def absorb(values: dict[str, np.ndarray]) -> None:
+        # each tensor is let go once binned, so the batch onnxruntime is filling meanwhile grows into
+        # the memory this one gives back (values is this batch's own dict)
         for name in tensors:
-            stats[name].update(values[name])
+            stats[name].update(values.pop(name))
 
     # One worker bins batch k while this thread reads batch k+1 and onnxruntime runs it (numpy and
     # onnxruntime release the GIL in their loops). The worker takes batches in order, one at a time,
