@@ -17,9 +17,21 @@ from fractions import Fraction
 import numpy as np
 import pytest
 
-from qfit.quant import fixed_point as fp
+from qfit.quant import compiled, fixed_point as fp
 
 INT32_MIN, INT32_MAX = -(1 << 31), (1 << 31) - 1
+
+
+@pytest.fixture(autouse=True, params=["compiled", "numpy"])
+def requantizer_code(request, monkeypatch):
+    """Every check runs on the C kernels (qfit.quant.compiled, where a C compiler built them) and on
+    the numpy blocks."""
+    if request.param == "compiled":
+        if not compiled.available():
+            pytest.skip("no C compiler built qfit's kernels here")
+    else:
+        monkeypatch.setattr(compiled, "_LIBRARY", [None])
+    return request.param
 
 
 def round_half_away(q: Fraction) -> int:
