@@ -152,7 +152,7 @@ def mobilenet_check_figures(sizes: dict, work: str, Figure, zoo, write_samples) 
         Figure(f"{label}, check with the sweep off / bare float pass", f"{value:.2f}x", "<= 4x", value <= 4.0,
                f"{zm.params / 1e6:.2f} M params, {calib_count} calibration + {many} evaluation .npy files: check "
                f"{check:.1f} s, float pass {floor:.2f} s" + ("" if value <= 4.0 else
-               "; missed: calibration and evaluation expose every tensor and the integer path runs in numpy")),
+               "; missed: calibration and evaluation expose every tensor, and the integer path runs each layer as its own onnxruntime session plus a C requantization pass")),
         Figure(f"{label}, peak RSS of the check ({many} eval samples)", mib(peaks[many]), "<= 1 GiB, flat",
                peaks[many] <= 2**30 and flat <= 1.1,
                f"{mib(peaks[few])} at {few} evaluation samples: {flat:.2f}x for {many / few:.0f}x the samples"

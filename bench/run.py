@@ -41,6 +41,7 @@ from qfit.memory import schedule
 from qfit.data import DataFolder, load_preprocess  # noqa: E402
 from qfit.graph.load import load_model, prepare_model  # noqa: E402
 from qfit.measure.integer import IntegerRunner  # noqa: E402
+from qfit.quant import compiled  # noqa: E402
 from qfit.quant.plan import METHODS, make_plan  # noqa: E402
 from qfit.quant.quantize import build_qdq, calibrated_ranges  # noqa: E402
 from qfit.runtime.sessions import Runner, batch_free  # noqa: E402
@@ -311,8 +312,9 @@ def integer_path_figure(sizes: dict) -> Figure:
     return Figure("evaluation, integer path / float preview (demo)", ratio_text(value), "<= 3x", value <= 3.0,
                   f"{len(evaluation)} samples, batch {batch_size}, {len(layers)} layers compared; "
                   f"{len(program.integer_nodes)} nodes in integers, {len(program.float_nodes)} in float; the int8 "
-                  f"runners alone: {runners['integer'] / runners['preview']:.2f}x (numpy int64 requantization "
-                  f"against onnxruntime's fused float layers)" + ("" if value <= 3.0 else
+                  f"runners alone: {runners['integer'] / runners['preview']:.2f}x (a session per layer and "
+                  f"{'C' if compiled.available() else 'numpy'} requantization against onnxruntime's fused float "
+                  f"layers)" + ("" if value <= 3.0 else
                                                                  "; missed: the integer runner's passes dominate"))
 
 
@@ -525,7 +527,8 @@ def machine() -> str:
     except (OSError, StopIteration):
         pass
     return (f"{os.cpu_count()} cores ({cpu}; SIMD: {check_figures.simd_flags()}), Python "
-            f"{platform.python_version()}, onnxruntime {ort.__version__}, numpy {np.__version__}")
+            f"{platform.python_version()}, onnxruntime {ort.__version__}, numpy {np.__version__}; qfit's C kernels "
+            f"{'built' if compiled.available() else 'not built (numpy code)'}")
 
 
 def main(argv: list[str] | None = None) -> int:
