@@ -76,3 +76,30 @@ def test_the_numpy_code_is_kept_when_asked(monkeypatch):
     monkeypatch.setattr(compiled, "_LIBRARY", [])
     monkeypatch.setenv("QFIT_NO_COMPILED", "1")
     assert compiled.available() is False
+
+
+def _batches(rng):
+    relu = np.maximum(rng.normal(0, 2, (4, 8, 30, 30)), 0).astype(np.float32)   # a zero spike
+    edges = np.array([-4.0, 4.0, 2.0, -2.0, 0.0, 3.9999998, -1e-39, 1e-39], np.float32)   # on bin edges, denormals
+    wide = (rng.standard_cauchy(50_000) * 10).astype(np.float32)                  # doubles the range often
+    bad = rng.normal(0, 1, 1000).astype(np.float32)
+    bad[[3, 500]] = [np.nan, np.inf]
+    return [relu, edges, wide, bad, rng.normal(0, 1e-3, 777).astype(np.float32)]
+
+
+@pytest.mark.parametrize("histogram", [True, False])
+def test_range_statistics_compiled_match_numpy_exactly(monkeypatch, histogram):
+    from qfit.quant.observe import TensorStats
+    rng = np.random.default_rng(6)
+    batches = _batches(rng)
+    got = TensorStats("t", histogram=histogram)
+    for batch in batches:
+        got.update(batch)
+    _numpy_only(monkeypatch)
+    want = TensorStats("t", histogram=histogram)
+    for batch in batches:
+        want.update(batch)
+    assert np.array_equal(got.hist, want.hist)
+    assert (got.min, got.max, got.count, got.nonfinite, got.zeros, got.radius) == \
+           (want.min, want.max, want.count, want.nonfinite, want.zeros, want.radius)
+    assert got.nonfinite == 2 and got.count == sum(b.size for b in batches) - 2

@@ -5,8 +5,11 @@
       y = clamp(x, low - z, high - z) + z
   the same int64 arithmetic as its numpy blocks (nine passes over int64 temporaries there).
 * error_sums: qfit.measure.compare.ErrorSums' sums of one tensor in one pass, in float64.
+* min_max, histogram: qfit.quant.observe.TensorStats' range and bins of one batch, in float32 as numpy
+  computes them (the same bins).
 
-The source below is compiled once per machine (`cc -O2 -std=c99 -shared -fPIC`, or $CC) into a
+The source below is compiled once per machine (`cc -O2 -std=c99 -ffp-contract=off -shared -fPIC`, or $CC;
+no fused multiply-add, so float32 arithmetic rounds as numpy's does) into a
 private cache folder ($XDG_CACHE_HOME/qfit or ~/.cache/qfit, named by the source's hash) and loaded
 with ctypes, which releases the GIL during each call. Where no compiler works, `available()` is
 False and the callers keep their numpy code, which gives the same integers (tests compare both on
@@ -98,6 +101,36 @@ void qfit_error_sums(const float *x, const float *y, int64_t n, double *sums)
     sums[5] = lo;
     sums[6] = hi;
 }
+
+/* Range statistics of one batch of a tensor (qfit.quant.observe.TensorStats): min and max, and the
+   count of values that are NaN or infinite (the caller takes another path when there are any). */
+void qfit_min_max(const float *x, int64_t n, float *low, float *high, int64_t *nonfinite)
+{
+    float lo = INFINITY, hi = -INFINITY;
+    int64_t bad = 0;
+    for (int64_t i = 0; i < n; ++i) {
+        const float v = x[i];
+        bad += !(v - v == 0.0f);   /* NaN - NaN and inf - inf are NaN */
+        lo = v < lo ? v : lo;
+        hi = v > hi ? v : hi;
+    }
+    *low = lo; *high = hi; *nonfinite = bad;
+}
+
+/* Histogram counts over [-radius, radius]: bin = (int)((x + radius) * per_bin) in float32, the
+   observe module's numpy arithmetic; counts has bins + 1 entries (x = radius lands in the last one,
+   which the caller folds into the one before), zeros counts the values exactly 0. */
+void qfit_histogram(const float *x, int64_t n, float radius, float per_bin, int64_t *counts, int64_t *zeros)
+{
+    int64_t z = 0;
+    for (int64_t i = 0; i < n; ++i) {
+        const float v = x[i];
+        const float scaled = (v + radius) * per_bin;
+        counts[(int64_t)scaled] += 1;
+        z += v == 0.0f;
+    }
+    *zeros += z;
+}
 """
 
 ACC_TYPES = {np.dtype(np.float32): "float32", np.dtype(np.int64): "int64"}
@@ -107,14 +140,22 @@ _LIBRARY: list = []   # [ctypes.CDLL or None] once tried
 
 
 def cache_folder() -> str:
+    """$XDG_CACHE_HOME/qfit or ~/.cache/qfit; a relative one (no home known) is refused: a library
+    is only ever loaded from a private, absolute place."""
     base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    if not os.path.isabs(base):
+        raise OSError("no absolute cache folder for qfit's kernels")
     return os.path.join(base, "qfit")
+
+
+def _suffix() -> str:
+    tag = f"{sys.implementation.cache_tag}-{sysconfig.get_platform()}".replace(os.sep, "_")
+    return f"-{tag}.so"
 
 
 def library_path() -> str:
     digest = hashlib.sha256(SOURCE.encode()).hexdigest()[:16]
-    tag = f"{sys.implementation.cache_tag}-{sysconfig.get_platform()}".replace(os.sep, "_")
-    return os.path.join(cache_folder(), f"kernels-{digest}-{tag}.so")
+    return os.path.join(cache_folder(), f"kernels-{digest}{_suffix()}")
 
 
 def _build(path: str) -> None:
@@ -130,9 +171,15 @@ def _build(path: str) -> None:
         with open(source, "w") as f:
             f.write(SOURCE)
         built = os.path.join(work, "kernels.so")
-        subprocess.run([compiler, "-O2", "-std=c99", "-shared", "-fPIC", "-o", built, source, "-lm"],
+        subprocess.run([compiler, "-O2", "-std=c99", "-ffp-contract=off", "-shared", "-fPIC", "-o", built, source, "-lm"],
                        check=True, capture_output=True, timeout=120)
         os.replace(built, path)
+    for name in os.listdir(folder):   # builds of older sources for this Python go
+        if name.startswith("kernels-") and name.endswith(_suffix()) and os.path.join(folder, name) != path:
+            try:
+                os.remove(os.path.join(folder, name))
+            except OSError:
+                pass
 
 
 def _load():
@@ -147,7 +194,11 @@ def _load():
             function.argtypes = [ctypes.c_void_p, ctypes.c_void_p, i64, i64, i64] + [ctypes.c_void_p] * 7 + [ctypes.c_int32]
             function.restype = None
     library.qfit_error_sums.argtypes = [ctypes.c_void_p, ctypes.c_void_p, i64, f64]
-    library.qfit_error_sums.restype = None
+    library.qfit_min_max.argtypes = [ctypes.c_void_p, i64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p]
+    library.qfit_histogram.argtypes = [ctypes.c_void_p, i64, ctypes.c_float, ctypes.c_float, ctypes.c_void_p,
+                                       ctypes.c_void_p]
+    for function in (library.qfit_error_sums, library.qfit_min_max, library.qfit_histogram):
+        function.restype = None
     return library
 
 
@@ -201,3 +252,20 @@ def error_sums(x: np.ndarray, y: np.ndarray) -> tuple[float, ...]:
     sums = np.zeros(7, np.float64)
     _LIBRARY[0].qfit_error_sums(x.ctypes.data, y.ctypes.data, x.size, sums.ctypes.data_as(ctypes.POINTER(ctypes.c_double)))
     return tuple(float(v) for v in sums)
+
+
+def min_max(x: np.ndarray) -> tuple[float, float, int]:
+    """(min, max, count of NaN or infinite values) of contiguous float32 x (size > 0); min and max
+    skip NaN."""
+    low, high, bad = np.zeros(1, np.float32), np.zeros(1, np.float32), np.zeros(1, np.int64)
+    _LIBRARY[0].qfit_min_max(x.ctypes.data, x.size, low.ctypes.data, high.ctypes.data, bad.ctypes.data)
+    return float(low[0]), float(high[0]), int(bad[0])
+
+
+def histogram(x: np.ndarray, radius: float, per_bin: float, counts: np.ndarray) -> int:
+    """Add the bins (int)((x + radius) * per_bin), in float32, of contiguous float32 x (every value in
+    [-radius, radius]) to int64 `counts` (bins + 1 entries); returns the count of exact zeros."""
+    zeros = np.zeros(1, np.int64)
+    _LIBRARY[0].qfit_histogram(x.ctypes.data, x.size, float(np.float32(radius)), float(np.float32(per_bin)),
+                               counts.ctypes.data, zeros.ctypes.data)
+    return int(zeros[0])

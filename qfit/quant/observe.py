@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from qfit.quant import compiled
 from qfit.quant.scale_floor import MIN_HISTOGRAM_RADIUS
 
 HIST_BINS = 4096  # over [-R, R]; 2048 bins per sign, as the entropy method expects
@@ -49,8 +50,13 @@ class TensorStats:
         flat = np.asarray(values, dtype=np.float32).ravel()
         if flat.size == 0:
             return
-        lo, hi = float(flat.min()), float(flat.max())
-        if not (np.isfinite(lo) and np.isfinite(hi)):  # NaN or Inf somewhere: min or max shows it
+        fast = compiled.available()   # one C pass each for the range and the bins (qfit.quant.compiled)
+        if fast:
+            lo, hi, bad = compiled.min_max(flat)
+        else:
+            lo, hi = float(flat.min()), float(flat.max())
+            bad = not (np.isfinite(lo) and np.isfinite(hi))   # NaN or Inf somewhere: min or max shows it
+        if bad:
             finite = np.isfinite(flat)
             self.nonfinite += int((~finite).sum())
             flat = flat[finite]
@@ -78,10 +84,15 @@ class TensorStats:
         # bin = floor((x + R) * BINS / 2R), the same float32 arithmetic for every slice. x >= -R, so
         # bins are >= 0; x = R (or a value rounding up to it) lands in an extra bin folded into the last.
         per_bin = HIST_BINS / (2 * self.radius)
+        counts = np.zeros(HIST_BINS + 1, np.int64)
+        if fast:
+            self.zeros += compiled.histogram(flat, self.radius, per_bin, counts)
+            counts[HIST_BINS - 1] += counts[HIST_BINS]
+            self.hist += counts[:HIST_BINS]
+            return
         size = min(BIN_CHUNK, flat.size)
         scaled = np.empty(size, np.float32)
         index = np.empty(size, np.intp)
-        counts = np.zeros(HIST_BINS + 1, np.int64)
         zeros = 0
         for start in range(0, flat.size, BIN_CHUNK):
             part = flat[start:start + BIN_CHUNK]
