@@ -152,6 +152,11 @@ def requantize(acc: np.ndarray, m0: np.ndarray, shift: np.ndarray, zero_point: i
     return np.clip(scaled, low, high)
 
 
+# The first constants of Requantizer._constants, in the order qfit.quant.compiled.requantize takes
+# them: M0, threshold, offset, right shift, low and high (centred), zero point.
+KERNEL_CONSTANTS = 7
+
+
 class Requantizer:
     """`requantize` (with an optional per-channel bias added to the accumulator first) with its
     constants prepared once, for the evaluation's hot loop.
@@ -255,7 +260,8 @@ class Requantizer:
     def _compiled(self, acc: np.ndarray, out: np.ndarray, constants: list[np.ndarray]) -> bool:
         """One compiled pass (qfit.quant.compiled) over acc viewed as (outer, channels, inner), where
         the constants vary along one axis at most; False (nothing done) otherwise."""
-        varying = sorted({a for c in constants[:7] for a in range(acc.ndim) if c.shape[a] > 1})
+        kernel_constants = constants[:KERNEL_CONSTANTS]
+        varying = sorted({a for c in kernel_constants for a in range(acc.ndim) if c.shape[a] > 1})
         if len(varying) > 1:
             return False
         axis = varying[0] if varying else acc.ndim - 1
@@ -268,7 +274,7 @@ class Requantizer:
         if per_channel is None:
             per_channel = self._per_channel[key] = [
                 np.ascontiguousarray(np.broadcast_to(c.reshape(-1), (channels,)), dtype=np.int64)
-                for c in constants[:7]]
+                for c in kernel_constants]
         # one thread: split over the requantizer's two threads, the demo's integer path took 1.36x
         # as long (onnxruntime's own threads run the next layer's sums on those cores)
         compiled.requantize(acc3, out3, *per_channel, double=self.rounding == "double")

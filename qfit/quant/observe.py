@@ -87,9 +87,14 @@ class TensorStats:
         counts = np.zeros(HIST_BINS + 1, np.int64)
         if fast:
             self.zeros += compiled.histogram(flat, self.radius, per_bin, counts)
-            counts[HIST_BINS - 1] += counts[HIST_BINS]
-            self.hist += counts[:HIST_BINS]
-            return
+        else:
+            self.zeros += self._bin_in_slices(flat, per_bin, counts)
+        counts[HIST_BINS - 1] += counts[HIST_BINS]
+        self.hist += counts[:HIST_BINS]
+
+    def _bin_in_slices(self, flat: np.ndarray, per_bin: float, counts: np.ndarray) -> int:
+        """numpy's binning (the C kernel's arithmetic): add the bins of `flat` to `counts`, slice by
+        slice; returns the count of exact zeros."""
         size = min(BIN_CHUNK, flat.size)
         scaled = np.empty(size, np.float32)
         index = np.empty(size, np.intp)
@@ -102,9 +107,7 @@ class TensorStats:
             np.multiply(scaled[:n], per_bin, out=scaled[:n])
             index[:n] = scaled[:n]  # truncation = floor for these non-negative values
             counts += np.bincount(index[:n], minlength=HIST_BINS + 1)
-        counts[HIST_BINS - 1] += counts[HIST_BINS]
-        self.hist += counts[:HIST_BINS]
-        self.zeros += zeros
+        return zeros
 
     def _double(self) -> None:
         # bins pair up: the old grid [-R, R] becomes the middle half of [-2R, 2R]
