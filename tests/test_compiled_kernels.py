@@ -103,3 +103,31 @@ def test_range_statistics_compiled_match_numpy_exactly(monkeypatch, histogram):
     assert (got.min, got.max, got.count, got.nonfinite, got.zeros, got.radius) == \
            (want.min, want.max, want.count, want.nonfinite, want.zeros, want.radius)
     assert got.nonfinite == 2 and got.count == sum(b.size for b in batches) - 2
+
+
+def test_a_whole_check_on_the_digits_model_gives_the_same_figures_with_and_without_the_kernels(tmp_path,
+                                                                                              monkeypatch):
+    # scikit-learn's bundled digits set (held-out split) through the committed digits CNN: calibration
+    # (histograms), the integer-path evaluation and the per-layer error sums run once on the C kernels
+    # and once on the numpy code; the int8 model and every reported figure must be the same.
+    from digits_folders import INPUT_SHAPES, MODEL, write_folders
+    from through_qfit import check_with_report
+    from qfit import check as pipeline
+
+    calib, evaluation = write_folders(tmp_path / "digits")
+
+    def run(out):
+        options = pipeline.CheckOptions(model_path=str(MODEL), calib_dir=calib, eval_dir=evaluation,
+                                        out_dir=str(tmp_path / out), flash_limit_bytes=1 << 20,
+                                        sram_limit_bytes=256 << 10, input_shapes=INPUT_SHAPES, progress=False,
+                                        isolated_samples=0)
+        reported = check_with_report(options)
+        return reported.result.quantized.model.SerializeToString(), reported.report
+
+    with_kernels = run("compiled")
+    _numpy_only(monkeypatch)
+    without = run("numpy")
+    assert with_kernels[0] == without[0]
+    assert with_kernels[1]["accuracy"] == without[1]["accuracy"]
+    assert with_kernels[1]["layers"] == without[1]["layers"]
+    assert with_kernels[1]["accuracy"]["int8"] >= 95.0   # the digits CNN stays accurate in int8 (float 98.70 %)
